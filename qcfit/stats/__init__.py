@@ -1,0 +1,1 @@
+"""Pure statistical core: numpy/scipy over arrays, no I/O, vectorized over many lines."""

@@ -1,0 +1,1 @@
+"""The store: the only package that imports SQLAlchemy."""
