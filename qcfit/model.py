@@ -8,6 +8,8 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 
+import numpy as np
+
 from qcfit.errors import InvalidArgumentError
 
 SHIFT_ID_SEPARATOR = "_"
@@ -52,3 +54,33 @@ def parse_shift_id(text: str) -> tuple[dt.date, str]:
             "--shift", f"{text!r} is not a shift id; write the start date and shift name, e.g. 2026-01-05_A"
         )
     return date, name
+
+
+@dataclass(frozen=True, slots=True)
+class BaselineRef:
+    """The baseline version a line is held to for one shift (resolved from config + store).
+
+    ``proportions`` follow ``categories`` (the plant's category order) and sum to 1;
+    ``rate`` is defects per inspected unit, or None when the baseline sets no rate.
+    ``thresholds`` holds this baseline's overrides of the [thresholds] keys.
+    """
+
+    version_id: int
+    name: str
+    effective: dt.date
+    categories: tuple[str, ...]
+    proportions: tuple[float, ...]
+    rate: float | None = None
+    thresholds: tuple[tuple[str, float], ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class CountTable:
+    """One shift's counts: ``counts`` is int64 (lines x categories), ``units`` float64 (lines,)
+    with NaN where units inspected are unknown. Arrays are read-only."""
+
+    shift: ShiftInstance
+    lines: tuple[str, ...]
+    categories: tuple[str, ...]
+    counts: "np.ndarray"
+    units: "np.ndarray"
