@@ -21,6 +21,7 @@ from qcfit.errors import EXIT_FAILURE, QcfitError
 
 # Areas whose modules register commands on ``main`` when imported.
 COMMAND_MODULES: tuple[str, ...] = (
+    "qcfit.cli.setup",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"

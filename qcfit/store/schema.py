@@ -29,6 +29,7 @@ from sqlalchemy import (
     Text,
     UniqueConstraint,
     text,
+    true,
 )
 
 NAMING = {
@@ -47,7 +48,8 @@ line = Table(
     metadata,
     Column("code", String(CODE), primary_key=True),
     Column("name", String(200), nullable=False),
-    Column("active", Boolean, nullable=False, server_default=text("1")),
+    # true() renders 1 on SQLite and true on PostgreSQL (a bare 1 is refused there)
+    Column("active", Boolean, nullable=False, server_default=true()),
 )
 
 category = Table(
