@@ -616,7 +616,10 @@ def _fmt_span(s: ShiftSpec) -> str:
 
 
 def _parse_timezone(col: _Collector, plant: Mapping) -> tuple[zoneinfo.ZoneInfo | None, str]:
-    name = _value(col, plant, "timezone", "plant", _text(), required=True)
+    if "timezone" not in plant:
+        col.add("plant.timezone", 'missing; the plant\'s IANA time zone, e.g. timezone = "Europe/Berlin"')
+        return None, ""
+    name = _value(col, plant, "timezone", "plant", _text())
     if name is None:
         return None, ""
     try:
