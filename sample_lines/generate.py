@@ -7,8 +7,12 @@ and numpy, reads nothing, and writes the same bytes on every run:
   (a row with quantity 2 is two identical rejects from one shot). Timestamps are ISO 8601
   plant-local wall time WITH the UTC offset (``2026-10-25T02:30:00+02:00``), so the hour that
   repeats when summer time ends is unambiguous.
-* ``data/units_inspected.csv``  ``shift,line,units_inspected``: units inspected per shift x line,
-  the shift named by its id (local start date + shift name, ``2026-10-07_B``).
+  Two rejects of one category on one line in the same second are one row with their total
+  quantity (the loader treats (instant, line, category) as the row key).
+* ``data/shift_counts.csv``  ``shift,line,category,count,units_inspected``: the same rejects
+  summed per shift x line x category (zeros included) with the units inspected on that line in
+  that shift, the shift named by its id (local start date + shift name, ``2026-10-07_B``).
+  This is qcfit's counts format; it is the only place the units inspected are given.
 * ``data/truth.csv``  per shift x line: the true mix and rate the counts were drawn from, the
   phase (in-control / fault) and the true Cohen's w against the approved baseline mix. It is
   for the tests and the scenario text, not for loading.
@@ -176,15 +180,18 @@ def draw(rng: np.random.Generator, shift: Shift, line: str, p: np.ndarray, rate:
 
 
 def _event_rows(rng: np.random.Generator, shift: Shift, line: str, counts: np.ndarray) -> list:
-    """Split counts into logged rows (quantity 1 or 2) at uniform random seconds in the shift."""
+    """Split counts into logged rows (quantity 1 or 2) at uniform random seconds in the shift;
+    rows of one category landing on the same second are merged (quantities summed)."""
     seconds = int((shift.end_utc - shift.start_utc).total_seconds())
-    rows = []
+    merged: dict[tuple[int, str, str], int] = {}
     for k, count in enumerate(counts.tolist()):
         pairs = int(rng.binomial(count // 2, PAIR_PROBABILITY)) if count >= 2 else 0
         quantities = [2] * pairs + [1] * (count - 2 * pairs)
         offsets = rng.integers(0, seconds, size=len(quantities))
-        rows.extend((int(o), line, CATEGORIES[k], q) for o, q in zip(offsets, quantities, strict=True))
-    return rows
+        for offset, quantity in zip(offsets.tolist(), quantities, strict=True):
+            key = (offset, line, CATEGORIES[k])
+            merged[key] = merged.get(key, 0) + quantity
+    return [(*key, quantity) for key, quantity in merged.items()]
 
 
 def _local_iso(ts_utc: dt.datetime, tz: ZoneInfo) -> str:
@@ -197,11 +204,11 @@ def generate(out: Path) -> dict[str, Path]:
     rng = np.random.default_rng(SEED)
     shifts = shift_instances()
     events = io.StringIO(newline="")
-    units = io.StringIO(newline="")
+    counts = io.StringIO(newline="")
     truth = io.StringIO(newline="")
-    ev, un, tr = (csv.writer(f, lineterminator="\n") for f in (events, units, truth))
+    ev, co, tr = (csv.writer(f, lineterminator="\n") for f in (events, counts, truth))
     ev.writerow(["timestamp", "line", "category", "quantity"])
-    un.writerow(["shift", "line", "units_inspected"])
+    co.writerow(["shift", "line", "category", "count", "units_inspected"])
     tr.writerow(["shift", "line", "phase", "units_inspected", "true_rate", "expected_defects",
                  "defects", "true_cohen_w", *(f"true_share_{c}" for c in CATEGORIES)])
     for index, shift in enumerate(shifts):
@@ -210,7 +217,8 @@ def generate(out: Path) -> dict[str, Path]:
             p, rate, phase = true_state(line, index, shifts)
             got = draw(rng, shift, line, p, rate)
             rows.extend(_event_rows(rng, shift, line, got.counts))
-            un.writerow([shift.id, line, got.units])
+            co.writerows([shift.id, line, c, int(x), got.units]
+                         for c, x in zip(CATEGORIES, got.counts, strict=True))
             p0 = np.array(MIX[LINES[line].group])
             tr.writerow([shift.id, line, phase, got.units, f"{rate:.6f}",
                          f"{got.units * rate:.2f}", int(got.counts.sum()),
@@ -222,10 +230,10 @@ def generate(out: Path) -> dict[str, Path]:
     out.mkdir(parents=True, exist_ok=True)
     paths = {
         "events": out / "defect_events.csv",
-        "units": out / "units_inspected.csv",
+        "counts": out / "shift_counts.csv",
         "truth": out / "truth.csv",
     }
-    for key, buffer in (("events", events), ("units", units), ("truth", truth)):
+    for key, buffer in (("events", events), ("counts", counts), ("truth", truth)):
         paths[key].write_bytes(buffer.getvalue().encode("utf-8"))
     return paths
 

@@ -20,12 +20,24 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
+from qcfit.calendar import ShiftCalendar
 from qcfit.config import Config, load_config
+from qcfit.ingest_csv import read_table
+from qcfit.ingest_rows import (
+    COUNT_COLUMNS,
+    COUNT_OPTIONAL,
+    EVENT_COLUMNS,
+    EVENT_OPTIONAL,
+    validate_counts,
+    validate_events,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_lines"
 DATA = SAMPLE / "data"
-DATA_FILES = ("defect_events.csv", "units_inspected.csv", "truth.csv")
+DATA_FILES = ("defect_events.csv", "shift_counts.csv", "truth.csv")
+# The store is loaded after the data end; validation takes "now" as a parameter.
+LOAD_TIME = dt.datetime(2026, 12, 1, 12, 0, tzinfo=dt.UTC)
 
 # 3-sigma Shewhart false-alarm rate 0.0027 <-> in-control ARL 370 (Montgomery, Introduction to
 # Statistical Quality Control, ch. 6; from memory). The per-shift test "at the ARL-370 level".
@@ -132,8 +144,8 @@ def test_data_files_are_plain_csv_of_a_few_megabytes() -> None:
     assert sum(sizes.values()) < 6_000_000
     header = (DATA / "defect_events.csv").read_text(encoding="utf-8").splitlines()[0]
     assert header == "timestamp,line,category,quantity"
-    units_header = (DATA / "units_inspected.csv").read_text(encoding="utf-8").splitlines()[0]
-    assert units_header == "shift,line,units_inspected"
+    counts_header = (DATA / "shift_counts.csv").read_text(encoding="utf-8").splitlines()[0]
+    assert counts_header == "shift,line,category,count,units_inspected"
 
 
 def test_config_describes_the_generated_plant(config: Config) -> None:
@@ -202,9 +214,15 @@ def test_counts_units_and_truth_agree(counts: pd.DataFrame, truth: pd.DataFrame,
     by_shift_line = truth.set_index(["shift", "line"])
     assert counts.sum(axis=1).to_numpy().tolist() == by_shift_line["defects"].tolist()
     assert list(counts.index) == list(by_shift_line.index)
-    units = pd.read_csv(DATA / "units_inspected.csv").set_index(["shift", "line"])
-    assert units["units_inspected"].tolist() == by_shift_line["units_inspected"].tolist()
-    assert set(events["quantity"]) == {1, 2}
+    per_shift = pd.read_csv(DATA / "shift_counts.csv")
+    wide = per_shift.pivot_table(index=["shift", "line"], columns="category", values="count",
+                                 aggfunc="sum").reindex(index=counts.index, columns=counts.columns)
+    assert (wide.to_numpy() == counts.to_numpy()).all()
+    units = per_shift.groupby(["shift", "line"], sort=False)["units_inspected"].agg(["min", "max"])
+    assert (units["min"] == units["max"]).all()
+    assert units["min"].tolist() == by_shift_line["units_inspected"].tolist()
+    assert set(events["quantity"]) == {1, 2, 3}
+    assert not events.duplicated(["timestamp", "line", "category"]).any()
 
 
 def test_defect_rates_and_volumes_are_realistic(truth: pd.DataFrame) -> None:
@@ -213,6 +231,41 @@ def test_defect_rates_and_volumes_are_realistic(truth: pd.DataFrame) -> None:
     assert rate.between(0.005, 0.02).all(), rate
     big = truth[truth["line"] != "IM5"].groupby("line")["defects"].mean()
     assert big.between(150, 300).all(), big
+
+
+def test_qcfit_calendar_gives_the_same_shifts(config: Config, windows: pd.DataFrame,
+                                              events: pd.DataFrame, counts: pd.DataFrame) -> None:
+    calendar = ShiftCalendar.from_config(config)
+    first = windows["start"].iloc[0].to_pydatetime()
+    last = windows["end"].iloc[-1].to_pydatetime()
+    instances = calendar.instances_between(first, last)
+    assert [i.id for i in instances] == windows["shift"].tolist()
+    assert [i.start for i in instances] == [t.to_pydatetime() for t in windows["start"]]
+    assert [i.end for i in instances] == [t.to_pydatetime() for t in windows["end"]]
+    assigned, index = calendar.assign(events["ts"])
+    assert (index >= 0).all()
+    ids = np.array([i.id for i in assigned])[index]
+    per_shift = events.assign(shift=ids).groupby("shift")["quantity"].sum()
+    assert per_shift.reindex(windows["shift"], fill_value=0).tolist() == (
+        counts.groupby(level="shift", sort=False).sum().sum(axis=1).tolist())
+
+
+def test_qcfit_accepts_every_row_of_both_data_files(config: Config) -> None:
+    calendar = ShiftCalendar.from_config(config)
+    options = dict(lines=config.lines, categories=config.categories, calendar=calendar,
+                   now=LOAD_TIME)
+    path = DATA / "defect_events.csv"
+    table = read_table(path.read_bytes(), source=str(path), required=EVENT_COLUMNS,
+                       optional=EVENT_OPTIONAL)
+    events = validate_events(table, **options)
+    assert events.bad_rows == () and len(events.events) == table.records
+    assert int(events.events["quantity"].sum()) == 145_851
+    path = DATA / "shift_counts.csv"
+    table = read_table(path.read_bytes(), source=str(path), required=COUNT_COLUMNS,
+                       optional=COUNT_OPTIONAL)
+    counts = validate_counts(table, **options)
+    assert counts.bad_rows == () and len(counts.counts) == 198 * 5 * 8
+    assert len(counts.units) == 198 * 5 and int(counts.counts["count"].sum()) == 145_851
 
 
 # ----------------------------------------------------------------------------- the faults
