@@ -22,6 +22,7 @@ from qcfit.errors import EXIT_FAILURE, QcfitError
 # Areas whose modules register commands on ``main`` when imported.
 COMMAND_MODULES: tuple[str, ...] = (
     "qcfit.cli.setup",
+    "qcfit.cli.baseline",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"
