@@ -1,0 +1,317 @@
+"""p-value engines: asymptotic chi-square, exact enumeration and seeded Monte Carlo.
+
+Monte Carlo p-value (Davison & Hinkley, *Bootstrap Methods and their Application*, 1997,
+eq. 4.11; North, Curtis & Sham, *Am. J. Hum. Genet.* 71, 2002)::
+
+    p = (1 + #{b : T_b >= t}) / (1 + B)
+
+counted with a relative tolerance of 1e-9 on ``t`` so that tables whose statistic equals the
+observed one up to rounding count as ties. This p-value is never 0 and is itself a valid
+p-value (P(p <= alpha) <= alpha under the null for any B), unlike #/B. Its Monte Carlo
+standard error is reported as sqrt(p (1 - p) / B).
+
+Exact p-value: the sum of the null probabilities of every outcome whose statistic is >= t
+(same tolerance), by full enumeration when the number of outcomes is at most ``exact_limit``.
+
+Reproducibility: the reference sample for one null model (for example n = 37 defects against
+one baseline) is a pure function of (seed, model key, draws). Draws come in chunks of
+``CHUNK``; chunk j uses ``SeedSequence([seed, *key_words, j])``. So a line gets the same
+p-value in a batch call and alone, lines with the same null model share one sample, and
+extending a sample keeps its first draws.
+
+``auto`` (``resolve``): asymptotic only when Cochran's rule holds and the asymptotic p is not
+within a factor ``refine_factor`` of a decision level; otherwise exact when the enumeration is
+small, else Monte Carlo. Monte Carlo runs ``draws`` draws, then keeps doubling while its p is
+within 3 standard errors of a decision level alpha, up to B = (1 - alpha) / (alpha * rel_se^2)
+draws (relative standard error ``rel_se`` at alpha). Because one fixed seed gives the same
+reference sample to every shift with the same null model, it is this per-sample precision,
+not only the average over seeds, that keeps the realised false-alarm rate near alpha.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from qcfit.errors import InvalidArgumentError
+
+DEFAULT_DRAWS = 10_000
+DEFAULT_LEVELS: tuple[float, ...] = (0.01, 1 / 370, 0.05)
+EXACT_LIMIT = 200_000
+CHUNK = 5_000
+REFINE_FACTOR = 3.0
+REFINE_REL_SE = 0.03
+MAX_DRAWS = 500_000
+TIE_RTOL = 1e-9
+PVALUE_METHODS = ("auto", "asymptotic", "monte-carlo", "exact")
+
+Sampler = Callable[[np.random.Generator, int], np.ndarray]
+Enumerator = Callable[[], tuple[np.ndarray, np.ndarray]]
+
+
+def _reasons(template: str, *columns: np.ndarray) -> np.ndarray:
+    """Format ``template`` per row, once per distinct combination of the columns."""
+    cache: dict[tuple, str] = {}
+    out = np.empty(len(columns[0]), dtype=object)
+    for i, combo in enumerate(zip(*(c.tolist() for c in columns), strict=True)):
+        text = cache.get(combo)
+        if text is None:
+            text = cache[combo] = template.format(*combo)
+        out[i] = text
+    return out
+
+
+def asymptotic_pvalue(statistic: np.ndarray, dof: np.ndarray) -> np.ndarray:
+    """Upper tail of chi-square(dof) at ``statistic``; NaN where dof < 1."""
+    statistic = np.asarray(statistic, dtype=float)
+    dof = np.asarray(dof, dtype=float)
+    with np.errstate(invalid="ignore"):
+        out = stats.chi2.sf(statistic, np.where(dof >= 1, dof, np.nan))
+    return np.asarray(out, dtype=float)
+
+
+def cochran_rule(expected: np.ndarray, support: np.ndarray) -> np.ndarray:
+    """Common practice after Cochran (1954): all expected >= 1 and at most 20% below 5.
+
+    Shapes (m, k) -> (m,); only cells where ``support`` is True count.
+    """
+    e = np.where(support, expected, np.inf)
+    n_cells = support.sum(axis=-1)
+    low = ((e < 5) & support).sum(axis=-1)
+    return (e.min(axis=-1) >= 1.0) & (low <= 0.2 * n_cells)
+
+
+def seed_root(seed: int | np.random.Generator) -> int:
+    """The integer root every stream is derived from (recorded in results)."""
+    if isinstance(seed, np.random.Generator):
+        return int(seed.integers(0, 2**63 - 1))
+    if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
+        raise InvalidArgumentError("seed", f"must be an int >= 0 or a numpy Generator, got {seed!r}")
+    return int(seed)
+
+
+def key_words(*parts: object) -> list[int]:
+    """Stable 32-bit words from a model description (not Python's salted hash)."""
+    h = hashlib.blake2b(digest_size=16)
+    for part in parts:
+        arr = np.ascontiguousarray(part)
+        h.update(str(arr.dtype).encode() + str(arr.shape).encode())
+        h.update(arr.tobytes())
+    digest = h.digest()
+    return [int.from_bytes(digest[i:i + 4], "little") for i in range(0, 16, 4)]
+
+
+def _ge_count(sorted_values: np.ndarray, t: np.ndarray) -> np.ndarray:
+    t = np.asarray(t, dtype=float)
+    cut = t - TIE_RTOL * np.maximum(np.abs(t), 1.0)
+    return sorted_values.size - np.searchsorted(sorted_values, cut, side="left")
+
+
+@dataclass(slots=True)
+class ReferenceSample:
+    """Null statistics of one model, drawn in seeded chunks (mutable, internal)."""
+
+    sampler: Sampler
+    root: int
+    words: list[int]
+    chunks: list[np.ndarray] = field(default_factory=list)
+    _sorted: np.ndarray | None = None
+    _sorted_size: int = -1
+
+    def ensure(self, draws: int) -> None:
+        while len(self.chunks) * CHUNK < draws:
+            j = len(self.chunks)
+            rng = np.random.default_rng(np.random.SeedSequence([self.root, *self.words, j]))
+            self.chunks.append(np.asarray(self.sampler(rng, CHUNK), dtype=float))
+
+    def count_ge(self, t: np.ndarray, draws: int) -> np.ndarray:
+        self.ensure(draws)
+        if self._sorted_size != draws:
+            self._sorted = np.sort(np.concatenate(self.chunks)[:draws])
+            self._sorted_size = draws
+        assert self._sorted is not None
+        return _ge_count(self._sorted, t)
+
+
+def exact_tail(values: np.ndarray, probs: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """P(T >= t) from an enumerated null distribution (values, probabilities)."""
+    order = np.argsort(values, kind="stable")
+    v = values[order]
+    tail = np.concatenate([np.cumsum(probs[order][::-1])[::-1], [0.0]])
+    idx = v.size - _ge_count(v, t)
+    return np.minimum(tail[idx], 1.0)
+
+
+@dataclass(frozen=True, slots=True)
+class Model:
+    """One null model: a sampler for Monte Carlo and, if small, an exact enumerator."""
+
+    sampler: Sampler
+    words: list[int]
+    n_outcomes: int
+    enumerate: Enumerator | None
+    rank: Callable[[np.ndarray], np.ndarray]
+
+
+def rank_observed(models: list[Model], model_of: np.ndarray, observed: np.ndarray
+                  ) -> np.ndarray:
+    """The ranking statistic of each observed item under its own model."""
+    out = np.empty(len(model_of))
+    order = np.argsort(model_of, kind="stable")
+    bounds = np.searchsorted(model_of[order], np.arange(len(models) + 1))
+    for j, mo in enumerate(models):
+        sel = order[bounds[j]:bounds[j + 1]]
+        if sel.size:
+            out[sel] = mo.rank(observed[sel])
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class Resolved:
+    pvalue: np.ndarray
+    se: np.ndarray
+    draws: np.ndarray
+    method: np.ndarray
+    reason: np.ndarray
+
+
+def _near(p: np.ndarray, levels: tuple[float, ...], factor: float) -> np.ndarray:
+    out = np.zeros(p.shape, dtype=bool)
+    for a in levels:
+        out |= (p >= a / factor) & (p <= a * factor)
+    return out
+
+
+def _cap(alpha: float, rel_se: float) -> int:
+    return int(min(MAX_DRAWS, np.ceil((1 - alpha) / (alpha * rel_se**2))))
+
+
+def _next_draws(p: np.ndarray, b: np.ndarray, levels: tuple[float, ...], rel_se: float
+                ) -> np.ndarray:
+    """Draws wanted next: double while p is within 3 standard errors of a level."""
+    se = np.sqrt(np.maximum(p * (1 - p), 1.0 / (b + 1)) / b)
+    want = b.copy()
+    for a in levels:
+        cap = _cap(a, rel_se)
+        close = (np.abs(p - a) < 3 * se) & (b < cap)
+        want = np.where(close, np.maximum(want, np.minimum(2 * b, cap)), want)
+    return want
+
+
+def _monte_carlo(t, lines, model_of, models, root, draws, levels, rel_se, adaptive):
+    """Monte Carlo p for ``lines`` (indices); returns (p, se, B) arrays for those lines."""
+    samples: dict[int, ReferenceSample] = {}
+    b = np.full(len(lines), draws, dtype=np.int64)
+    p = np.empty(len(lines))
+    pending = np.ones(len(lines), dtype=bool)
+    while pending.any():
+        for key in np.unique(model_of[lines][pending]):
+            sel = np.flatnonzero((model_of[lines] == key) & pending)
+            m = models[key]
+            ref = samples.setdefault(key, ReferenceSample(m.sampler, root, m.words))
+            for size in np.unique(b[sel]):
+                s = sel[b[sel] == size]
+                p[s] = (1 + ref.count_ge(t[lines[s]], int(size))) / (1 + size)
+        if not adaptive:
+            break
+        nxt = np.where(pending, _next_draws(p, b, levels, rel_se), b)
+        pending = nxt > b
+        b = nxt
+    se = np.sqrt(p * (1 - p) / b)
+    return p, se, b
+
+
+def _exact(t, lines, model_of, models):
+    p = np.empty(len(lines))
+    for key in np.unique(model_of[lines]):
+        sel = np.flatnonzero(model_of[lines] == key)
+        enum = models[key].enumerate
+        assert enum is not None
+        values, probs = enum()
+        p[sel] = exact_tail(values, probs, t[lines[sel]])
+    return p
+
+
+def resolve(
+    t: np.ndarray,
+    p_asym: np.ndarray,
+    cochran: np.ndarray,
+    testable: np.ndarray,
+    build: Callable[[np.ndarray], tuple[np.ndarray, list[Model], np.ndarray]],
+    *,
+    mode: str,
+    draws: int,
+    root: int,
+    levels: tuple[float, ...],
+    exact_limit: int = EXACT_LIMIT,
+    refine_factor: float = REFINE_FACTOR,
+    rel_se: float = REFINE_REL_SE,
+) -> Resolved:
+    """Choose and compute the p-value of every testable line (see module docstring).
+
+    ``t`` is the reported statistic. ``build(lines)`` returns (model index per line in
+    ``lines``, models, ranking statistic per line); it is called only for the lines that need
+    an exact or Monte Carlo p-value, which rank by that statistic.
+    """
+    m = t.shape[0]
+    p = np.where(testable, p_asym, np.nan)
+    se = np.zeros(m)
+    used = np.zeros(m, dtype=np.int64)
+    method = np.full(m, "asymptotic", dtype=object)
+    reason = np.full(m, "", dtype=object)
+    idx = np.flatnonzero(testable)
+    if mode == "asymptotic":
+        reason[idx] = "asymptotic chi-square (requested)"
+        return Resolved(p, se, used, method, reason)
+    if mode == "auto":
+        near = _near(p_asym, levels, refine_factor)
+        keep = idx[cochran[idx] & ~near[idx]]
+        reason[keep] = ("asymptotic: Cochran's rule holds (all expected >= 1, at most 20% "
+                        "below 5) and p is not near a decision level")
+        idx = idx[~(cochran[idx] & ~near[idx])]
+    model_of = np.zeros(m, dtype=np.intp)
+    if idx.size == 0:
+        return Resolved(p, se, used, method, reason)
+    model_of[idx], models, t_rank = build(idx)
+    t = np.full(m, np.nan)
+    t[idx] = t_rank
+    fits = np.array([mo.enumerate is not None and mo.n_outcomes <= exact_limit
+                     for mo in models], dtype=bool)
+    small = np.zeros(m, dtype=bool)
+    small[idx] = fits[model_of[idx]]
+    if mode == "exact":
+        too_big = idx[~small[idx]]
+        if too_big.size:
+            i = int(too_big[0])
+            raise InvalidArgumentError(
+                "pvalue", f"exact enumeration of line {i} needs {models[model_of[i]].n_outcomes} "
+                f"outcomes (limit {exact_limit}); use 'monte-carlo' or 'auto'")
+        p[idx] = _exact(t, idx, model_of, models)
+        method[idx] = "exact"
+        reason[idx] = "exact enumeration (requested)"
+        return Resolved(p, se, used, method, reason)
+    if mode == "monte-carlo":
+        p[idx], se[idx], used[idx] = _monte_carlo(
+            t, idx, model_of, models, root, draws, levels, rel_se, adaptive=False)
+        method[idx] = "monte-carlo"
+        reason[idx] = f"Monte Carlo with {draws} draws (requested)"
+        return Resolved(p, se, used, method, reason)
+    why = np.where(cochran[idx], "asymptotic p is within a factor "
+                   f"{refine_factor:g} of a decision level", "Cochran's rule fails "
+                   "(an expected count below 1 or over 20% below 5)")
+    ex, why_ex = idx[small[idx]], why[small[idx]]
+    if ex.size:
+        p[ex] = _exact(t, ex, model_of, models)
+        method[ex] = "exact"
+        reason[ex] = _reasons("exact enumeration: {}", why_ex)
+    mc, why_mc = idx[~small[idx]], why[~small[idx]]
+    if mc.size:
+        p[mc], se[mc], used[mc] = _monte_carlo(
+            t, mc, model_of, models, root, draws, levels, rel_se, adaptive=True)
+        method[mc] = "monte-carlo"
+        reason[mc] = _reasons("Monte Carlo, {1} draws: {0}", why_mc, used[mc])
+    return Resolved(p, se, used, method, reason)
