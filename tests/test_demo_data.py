@@ -9,8 +9,10 @@ from __future__ import annotations
 
 import datetime as dt
 import importlib.util
+import re
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -21,7 +23,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from qcfit.calendar import ShiftCalendar
-from qcfit.config import Config, load_config
+from qcfit.config import Config, load_config, parse_config
 from qcfit.ingest_csv import read_table
 from qcfit.ingest_rows import (
     COUNT_COLUMNS,
@@ -169,6 +171,35 @@ def test_config_describes_the_generated_plant(config: Config) -> None:
     assert config.sequential.enabled
     assert config.report.folder
     assert config.warnings == ()
+
+
+def _uncommented(text: str) -> str:
+    """The config with every commented-out setting or table header switched on."""
+    out = []
+    for line in text.splitlines():
+        rest = line[2:] if line.startswith("# ") else None
+        if rest is not None and re.fullmatch(r"\[[\w.-]+\]", rest.strip()):
+            line = rest
+        elif rest is not None:
+            try:
+                line = rest if tomllib.loads(rest) else line
+            except tomllib.TOMLDecodeError:
+                pass
+        out.append(line)
+    return "\n".join(out) + "\n"
+
+
+def test_commented_examples_in_the_config_are_valid_too() -> None:
+    # plant.toml doubles as the complete example config: what it shows commented out must
+    # work when switched on.
+    text = _uncommented((SAMPLE / "plant.toml").read_text(encoding="utf-8"))
+    config = parse_config(tomllib.loads(text), text=text)
+    assert config.source is not None and config.source.kind == "events"
+    assert config.store.url and config.store.url.startswith("postgresql")
+    assert config.notify.smtp_host and config.notify.command
+    assert config.log.file == "qcfit.log"
+    micro = next(b for b in config.baselines if b.name == "micro-cell")
+    assert micro.thresholds == {"min_effect_w": 0.30}
 
 
 # ----------------------------------------------------------------------- calendar and time
