@@ -94,16 +94,19 @@ def _check(path: Path, old_text: str, new_text: str, name: str) -> None:
     """Refuse (nothing written) unless the new text reads back as the old plus the block."""
     try:
         old_doc = tomlkit.parse(old_text).unwrap()
-        new_doc = tomlkit.parse(new_text).unwrap()
-        block_doc = tomllib.loads(new_text[len(old_text):])
-    except (TOMLKitError, tomllib.TOMLDecodeError) as exc:
-        raise BaselineError("--write", f"the block cannot be added to {path} as TOML ({exc}); "
-                                       "paste it by hand") from exc
+    except TOMLKitError as exc:
+        raise BaselineError("--write", f"{path} is not valid TOML ({exc})") from exc
     old_baselines = old_doc.get("baseline", {})
     if not isinstance(old_baselines, dict):
         raise BaselineError("--write", f"{path}: 'baseline' is not a table; paste the block by hand")
     if name in old_baselines:
         raise BaselineError("--name", f"a baseline named {name!r} is already in {path}")
+    try:
+        new_doc = tomlkit.parse(new_text).unwrap()
+        block_doc = tomllib.loads(new_text[len(old_text):])
+    except (TOMLKitError, tomllib.TOMLDecodeError) as exc:
+        raise BaselineError("--write", f"the block cannot be added to {path} as TOML ({exc}); "
+                                       "paste it by hand") from exc
     expected = dict(old_doc)
     expected["baseline"] = {**old_baselines, name: block_doc["baseline"][name]}
     if new_doc != expected:

@@ -682,14 +682,16 @@ def _warnings(study: FitStudy, win: _Window) -> list[str]:
 # --------------------------------------------------------------------------- TOML block
 
 
-def block_proportions(study: FitStudy) -> dict[str, float]:
-    """Shares for the TOML block: rounded to PROPORTION_DECIMALS so that they sum to 1
-    exactly (largest remainder), each at least one unit of the last decimal."""
-    counts = np.asarray(study.proportions.counts, dtype=float)
-    if np.any(counts == 0):
-        counts = counts + 0.5
+def block_proportions(counts: Sequence[int], categories: Sequence[str]) -> dict[str, float]:
+    """Shares for the TOML block from pooled ``counts``: rounded to PROPORTION_DECIMALS so
+    that they sum to 1 exactly (largest remainder), each at least one unit of the last
+    decimal (a config share must be > 0). With a zero count every category gets half a defect
+    more, (x + 1/2) / (N + k/2) (the Jeffreys prior's posterior mean)."""
+    arr = np.asarray(counts, dtype=float)
+    if np.any(arr == 0):
+        arr = arr + 0.5
     scale = 10**PROPORTION_DECIMALS
-    raw = counts / counts.sum() * scale
+    raw = arr / arr.sum() * scale
     units = np.floor(raw).astype(np.int64)
     short = scale - int(units.sum())
     for i in np.argsort(-(raw - units), kind="stable")[:short]:
@@ -697,7 +699,7 @@ def block_proportions(study: FitStudy) -> dict[str, float]:
     while np.any(units == 0):
         units[np.argmax(units)] -= 1
         units[np.flatnonzero(units == 0)[0]] += 1
-    return {c: int(u) / scale for c, u in zip(study.categories, units, strict=True)}
+    return {str(c): int(u) / scale for c, u in zip(categories, units, strict=True)}
 
 
 def _key(text: str) -> str:
@@ -723,7 +725,7 @@ def baseline_block(study: FitStudy, *, name: str, lines: Sequence[str], effectiv
     """A ``[baseline.NAME]`` table (with its ``proportions`` sub-table) for the config file,
     with the intervals and the verdict as comments. ``window`` is (first date, last date)."""
     p = study.proportions
-    shares = block_proportions(study)
+    shares = block_proportions(p.counts, p.categories)
     first, last = window
     note = (f"fitted from {first} to {last}: {len(study.kept_shifts)} shifts, {p.defects} "
             f"defects, {len(study.excluded)} shift(s) excluded; {study.verdict}")
