@@ -128,6 +128,108 @@ are strings ``"HH:MM"`` or ``"HH:MM:SS"`` (a bare TOML time needs seconds: ``06:
     ``level``  ``"DEBUG"``, ``"INFO"``, ``"WARNING"``, ``"ERROR"``, default ``"INFO"``.
     ``max_bytes``  integer >= 10000, default 10000000. Size at which the file is rotated.
     ``backups``  integer 0-100, default 5. Rotated files kept.
+
+Warnings (the config still loads; they are logged and kept in ``Config.warnings``): shares
+scaled by ``normalize = true``, and hours of the day that no shift covers.
+
+Complete example (every key; the values shown are the defaults unless marked)::
+
+    [plant]
+    name = "Riverside moulding"          # example value
+    timezone = "America/Chicago"         # example value (required)
+    non_production_days = ["Sun"]        # example value
+    holidays = [2026-12-25, 2027-01-01]  # example value
+
+    [[shift]]
+    name = "A"
+    start = "06:00"
+    end = "14:00"
+
+    [[shift]]
+    name = "B"
+    start = "14:00"
+    end = "22:00"
+
+    [[shift]]
+    name = "C"
+    start = "22:00"
+    end = "06:00"        # crosses midnight; "2026-01-05_C" ends on the 6th
+
+    [lines]
+    P1 = "Press line 1"
+    P2 = "Press line 2"
+
+    [categories]
+    SCR = "scratch"
+    FL = "flash"
+    SH = "short shot"
+
+    [store]
+    url = "sqlite:///qcfit-store.sqlite"   # default: plant.sqlite beside plant.toml
+
+    [schedule]
+    grace_minutes = 15
+    tick_minutes = 5
+
+    [source]
+    url = "sqlite:///stations.sqlite"
+    query = "SELECT ts AS timestamp, line, category FROM defect_log"
+    kind = "events"
+    ambiguous = "raise"
+
+    [thresholds]
+    alarm_level = 0.01
+    watch_level = 0.05
+    min_effect_w = 0.10
+    min_effect_v = 0.10
+    min_rate_ratio = 1.25
+    multiple_testing = "bh"
+    power = 0.80
+    persistence_k = 1
+    persistence_m = 1
+    auto_clear_after = 3
+    mc_draws = 10000
+    seed = 20260105
+
+    [baseline.presses]
+    lines = "*"
+    effective = 2026-01-05
+    proportions = { SCR = 0.50, FL = 0.30, SH = 0.20 }
+    rate = 0.012
+    note = "agreed at the January quality review"
+
+    [baseline.presses.thresholds]
+    min_effect_w = 0.15
+
+    [baseline.press-2-new-mould]
+    lines = ["P2"]
+    effective = 2026-03-02
+    counts = { SCR = 120, FL = 45, SH = 35 }
+    normalize = false
+
+    [sequential]
+    enabled = true
+    target_arl = 370
+    ewma_lambda = 0.1
+    concerns = [{ category = "FL", factor = 2.0 }]
+
+    [report]
+    folder = "reports"                   # example value
+    keep = 30
+
+    [notify]
+    smtp_host = "mail.plant.local"       # example values from here on
+    smtp_port = 25
+    mail_from = "qcfit@plant.local"
+    mail_to = ["shift-lead@plant.local"]
+    command = ["/usr/local/bin/page-shift-lead", "--json"]
+    retries = 3
+
+    [log]
+    file = "qcfit.log"
+    level = "INFO"
+    max_bytes = 10000000
+    backups = 5
 """
 
 from __future__ import annotations
@@ -603,12 +705,37 @@ def _parse_shifts(col: _Collector, mapping: Mapping) -> tuple[ShiftSpec, ...]:
         if spec.name in seen:
             col.add(f"shift[{i}].name", f"{_show(spec.name)} is already the name of shift[{seen[spec.name]}]")
         seen.setdefault(spec.name, i)
+    overlaps = False
     for a in range(len(shifts)):
         for b in range(a + 1, len(shifts)):
             (i, x), (j, y) = shifts[a], shifts[b]
             if _overlap(x, y):
+                overlaps = True
                 col.add(f"shift[{j}]", f"{_fmt_span(y)} overlaps shift[{i}] {_fmt_span(x)}")
-    return tuple(spec for _, spec in shifts)
+    specs = tuple(spec for _, spec in shifts)
+    gaps = [] if overlaps else _uncovered(specs)
+    if gaps:
+        col.warn("shift", f"no shift covers {', '.join(gaps)}; events then belong to no shift")
+    return specs
+
+
+def _clock_text(minutes: float) -> str:
+    seconds = round(minutes * 60) % 86400
+    h, rest = divmod(seconds, 3600)
+    m, sec = divmod(rest, 60)
+    return f"{h:02d}:{m:02d}" + (f":{sec:02d}" if sec else "")
+
+
+def _uncovered(specs: tuple[ShiftSpec, ...]) -> list[str]:
+    """Wall-clock spans no shift covers ("22:00-06:00"), for non-overlapping shifts."""
+    ordered = sorted(specs, key=lambda s: _clock_minutes(s.start))
+    gaps: list[str] = []
+    for k, spec in enumerate(ordered):
+        end = (_clock_minutes(spec.start) + _span_minutes(spec.start, spec.end)) % 1440
+        following = _clock_minutes(ordered[(k + 1) % len(ordered)].start)
+        if (following - end) % 1440 > 1e-9:
+            gaps.append(f"{_clock_text(end)}-{_clock_text(following)}")
+    return gaps
 
 
 def _fmt_span(s: ShiftSpec) -> str:

@@ -388,7 +388,7 @@ timezone = "Europe/Berlin"
 [[shift]]
 name = "A"
 start = "06:00"
-end = "14:00"
+end = "06:00"
 [lines]
 L1 = "Line 1"
 L2 = "Line 2"
@@ -766,3 +766,45 @@ def test_baseline_spec_is_a_plain_record():
     spec = parse(with_baselines(GLAZE)).baselines[0]
     assert isinstance(spec, BaselineSpec)
     assert isinstance(spec.rate, float) and isinstance(spec.proportions["SCR"], float)
+
+
+def test_uncovered_hours_are_a_warning_not_an_error():
+    config = parse(plant(shift_tables(("A", '"06:00"', '"14:00"'), ("B", '"14:00"', '"21:30"'))))
+    assert config.warnings == (
+        Problem("shift", "no shift covers 21:30-06:00; events then belong to no shift"),)
+    full = parse(plant(shift_tables(("A", '"06:00"', '"18:00"'), ("N", '"18:00"', '"06:00"'))))
+    assert full.warnings == ()
+
+
+# --------------------------------------------------------------------------- the reference
+
+def _documented_example() -> str:
+    import textwrap
+
+    import qcfit.config as module
+
+    doc = module.__doc__ or ""
+    return textwrap.dedent(doc.split("Complete example", 1)[1].split("::\n", 1)[1])
+
+
+def test_the_documented_complete_example_loads_and_uses_every_key(tmp_path, write_config):
+    text = _documented_example()
+    config = load_config(write_config(tmp_path, text))
+    raw = tomllib.loads(text)
+    sections = {"store": config.store, "schedule": config.schedule, "source": config.source,
+                "thresholds": config.thresholds, "sequential": config.sequential,
+                "report": config.report, "notify": config.notify, "log": config.log}
+    for name, settings_obj in sections.items():
+        assert set(raw[name]) == {f.name for f in dataclasses.fields(settings_obj)}, name
+    assert set(raw["plant"]) == {"name", "timezone", "non_production_days", "holidays"}
+    baseline_keys = set(raw["baseline"]["presses"]) | set(raw["baseline"]["press-2-new-mould"])
+    assert baseline_keys == {"lines", "effective", "proportions", "counts", "normalize", "rate",
+                             "note", "thresholds"}
+    # the defaults the reference claims are the defaults of the dataclasses
+    assert config.thresholds == Thresholds()
+    assert [s.name for s in config.baselines] == ["presses", "press-2-new-mould"]
+    assert config.warnings == ()
+    import qcfit.config as module
+
+    for key in (*raw["thresholds"], *raw["notify"], *raw["log"], *raw["sequential"]):
+        assert f"``{key}``" in (module.__doc__ or ""), key
