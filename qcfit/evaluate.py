@@ -1,0 +1,631 @@
+"""One shift's counts + the baselines in force + thresholds -> findings (pure).
+
+A :class:`Finding` is one test with its context: what was tested (kind, line, baseline
+version), the numbers (statistic, df, p-value, effect size, power) and a verdict. This stage
+decides only what the numbers allow: ``tested`` (enough data to see the smallest effect that
+matters), ``too-little-data`` (not enough), or a reason no test was run. The alarm policy
+(:mod:`qcfit.policy`) adjusts p-values across the shift and turns ``tested`` into
+``in-control`` / ``watch`` / ``alarm``.
+
+Tests per shift (``kind``):
+
+* ``baseline``: each line's category counts against the baseline mix in force for it
+  (goodness of fit, Pearson X^2, ``auto`` p-value, Cohen's w = sqrt(X^2/n); Cohen 1988, ch. 7);
+* ``between-lines``: lines x categories homogeneity (Pearson X^2, Cramér's V =
+  sqrt(X^2 / (n (min(r, c) - 1))); Cramér 1946);
+* ``line-vs-rest``: each line against the pooled other lines (2 x k table; V = sqrt(X^2/n)),
+  which names the line behind a between-lines difference;
+* ``rate``: defects per inspected unit against the baseline rate (exact one-sided Poisson test;
+  effect = observed rate / baseline rate).
+
+Power (the "too little data to tell" verdict) is the noncentral chi-square power of the test
+at the alarm level against the smallest effect that matters: power = P(chi2(df, n w^2) >
+chi2_{1-alpha}(df)) (Cohen 1988, ch. 7). For the rate test it is the exact Poisson power
+against ``min_rate_ratio``.
+
+An exception in one line's test is caught and becomes a ``fault`` finding for that line; the
+other lines are still evaluated. Sequential-chart findings come from elsewhere and are passed in
+as ``extra`` (they are appended unchanged).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import logging
+import math
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import stats as sps
+
+from qcfit import stats as qstats
+from qcfit.model import BaselineRef, CountTable
+
+log = logging.getLogger(__name__)
+
+KIND_BASELINE = "baseline"
+KIND_BETWEEN = "between-lines"
+KIND_VS_REST = "line-vs-rest"
+KIND_RATE = "rate"
+KIND_SEQUENTIAL = "sequential"
+
+# Verdicts this stage gives (the policy adds in-control / watch / alarm).
+TESTED = "tested"
+TOO_LITTLE_DATA = "too-little-data"
+NOT_TESTED = "not-tested"
+IMPOSSIBLE = "impossible-category"
+NO_BASELINE = "no-baseline"
+UNKNOWN_CATEGORY = "category-not-in-baseline"
+FAULT = "fault"
+TESTABLE = frozenset({TESTED, TOO_LITTLE_DATA})
+
+TOP_CATEGORIES = 3
+# |adjusted residual| worth naming: common practice, no source (about the two-sided 5% normal
+# quantile, as in Agresti 2007, sec. 2.4.5, who reads |r| > 2 or 3 as a lack of fit).
+RESIDUAL_WORTH_NAMING = 2.0
+
+
+@dataclass(frozen=True, slots=True)
+class CategoryShift:
+    """One category's departure: direction "up"/"down", the adjusted (Haberman) residual,
+    observed count and share vs the reference share (baseline, or the pooled rest)."""
+
+    code: str
+    direction: str
+    adjusted_residual: float
+    observed: int
+    expected: float
+    share: float
+    reference_share: float
+
+    @property
+    def ratio(self) -> float:
+        """Observed share / reference share (inf when the reference share is 0)."""
+        if self.reference_share <= 0:
+            return math.inf
+        return self.share / self.reference_share
+
+    def as_json(self) -> dict[str, Any]:
+        return {
+            "code": self.code,
+            "direction": self.direction,
+            "adjusted_residual": round(self.adjusted_residual, 4),
+            "observed": self.observed,
+            "expected": round(self.expected, 4),
+            "share": round(self.share, 6),
+            "reference_share": round(self.reference_share, 6),
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    """One test of one shift (or why no test was run).
+
+    ``effect_floor`` is the smallest effect that matters for this test (w, V or rate ratio);
+    ``alarm_level`` / ``watch_level`` are the levels on the adjusted p-value for this test
+    (per-baseline overrides already applied). ``adjusted_pvalue`` and ``severity`` are filled
+    by the policy.
+    """
+
+    kind: str
+    line: str | None
+    verdict: str
+    reason: str
+    baseline_version_id: int | None = None
+    statistic: float | None = None
+    dof: int | None = None
+    pvalue: float | None = None
+    effect_size: float | None = None
+    effect_name: str | None = None
+    effect_floor: float | None = None
+    alarm_level: float = 0.01
+    watch_level: float = 0.05
+    power: float | None = None
+    power_needed: float | None = None
+    method: str | None = None
+    method_reason: str | None = None
+    mc_se: float | None = None
+    n: int | None = None
+    min_expected: float | None = None
+    top_categories: tuple[CategoryShift, ...] = ()
+    categories: tuple[str, ...] = ()
+    observed: tuple[float, ...] = ()
+    expected: tuple[float, ...] = ()
+    adjusted_residuals: tuple[float, ...] = ()
+    details: Mapping[str, Any] = field(default_factory=dict)
+    adjusted_pvalue: float | None = None
+    severity: str | None = None
+
+    @property
+    def testable(self) -> bool:
+        """True when the finding carries a p-value that takes part in the decision."""
+        return self.verdict in TESTABLE and self.pvalue is not None
+
+
+# ---------------------------------------------------------------------------------------
+# seeds and thresholds
+
+
+def derive_seed(base: int, *parts: object) -> int:
+    """A non-negative 63-bit seed from a base seed and labels (sha256; stable across runs)."""
+    text = ":".join([str(int(base))] + [str(p) for p in parts])
+    return int.from_bytes(hashlib.sha256(text.encode("utf-8")).digest()[:8], "big") >> 1
+
+
+def thresholds_for(thresholds: Any, baseline: BaselineRef | None) -> Any:
+    """The thresholds with this baseline's overrides applied (unknown keys are ignored)."""
+    if baseline is None or not baseline.thresholds:
+        return thresholds
+    names = {f.name for f in dataclasses.fields(thresholds)}
+    overrides = {k: v for k, v in baseline.thresholds if k in names}
+    if not overrides:
+        return thresholds
+    current = {k: getattr(thresholds, k) for k in overrides}
+    typed = {k: type(current[k])(v) if isinstance(current[k], int | float) else v for k, v in overrides.items()}
+    return dataclasses.replace(thresholds, **typed)
+
+
+# ---------------------------------------------------------------------------------------
+# power
+
+
+def chisq_power(w: float, dof: int, n: int, alpha: float) -> float:
+    """Noncentral chi-square power (Cohen 1988, ch. 7): P(chi2(dof, n w^2) > chi2_{1-alpha})."""
+    if dof < 1 or n < 1:
+        return 0.0
+    return float(qstats.chisq_power(w, dof, n, alpha))
+
+
+def poisson_power(mu0: float, ratio: float, alpha: float) -> float:
+    """Power of the exact one-sided Poisson test of mean mu0 against mean ratio * mu0.
+
+    The critical count c is the smallest c with P(X >= c | mu0) <= alpha; power is
+    P(X >= c | ratio * mu0).
+    """
+    if mu0 <= 0:
+        return 0.0
+    c = int(sps.poisson.isf(alpha, mu0)) + 1
+    while c > 0 and sps.poisson.sf(c - 2, mu0) <= alpha:
+        c -= 1
+    while sps.poisson.sf(c - 1, mu0) > alpha:
+        c += 1
+    return float(sps.poisson.sf(c - 1, mu0 * ratio))
+
+
+def poisson_upper_pvalue(x: int, mu0: float) -> float:
+    """Exact one-sided p-value P(X >= x | Poisson(mu0)) for an increase in the defect rate."""
+    if x <= 0:
+        return 1.0
+    return float(sps.poisson.sf(x - 1, mu0))
+
+
+# ---------------------------------------------------------------------------------------
+# helpers over stats results
+
+
+def _row(value: Any, i: int) -> Any:
+    arr = np.asarray(value)
+    if arr.ndim == 0:
+        return arr.item()
+    return arr[i]
+
+
+def _opt_float(value: Any) -> float | None:
+    if value is None:
+        return None
+    out = float(value)
+    return out if math.isfinite(out) else None
+
+
+def _attr(result: Any, name: str, i: int) -> Any:
+    value = getattr(result, name, None)
+    if value is None:
+        return None
+    return _row(value, i)
+
+
+def top_shifts(
+    codes: Sequence[str],
+    observed: np.ndarray,
+    expected: np.ndarray,
+    residuals: np.ndarray,
+    reference: np.ndarray,
+    *,
+    limit: int = TOP_CATEGORIES,
+) -> tuple[CategoryShift, ...]:
+    """The categories with the largest |adjusted residual| (those >= 2 first; at least one)."""
+    order = np.argsort(-np.abs(residuals), kind="stable")
+    n = float(observed.sum())
+    chosen = [int(j) for j in order if abs(residuals[j]) >= RESIDUAL_WORTH_NAMING][:limit]
+    if not chosen and len(order) and np.isfinite(residuals[order[0]]):
+        chosen = [int(order[0])]
+    out = []
+    for j in chosen:
+        r = float(residuals[j])
+        out.append(
+            CategoryShift(
+                code=codes[j],
+                direction="up" if r > 0 else "down",
+                adjusted_residual=r,
+                observed=int(observed[j]),
+                expected=float(expected[j]),
+                share=float(observed[j] / n) if n > 0 else 0.0,
+                reference_share=float(reference[j]),
+            )
+        )
+    return tuple(out)
+
+
+def _contained(kind: str, line: str | None, version: int | None, fn: Callable[[], Finding]) -> Finding:
+    try:
+        return fn()
+    except Exception as exc:  # one line's failure must not stop the others
+        log.exception("%s test failed for line %s", kind, line)
+        return Finding(
+            kind=kind,
+            line=line,
+            verdict=FAULT,
+            reason=f"{kind} test failed: {type(exc).__name__}: {exc}",
+            baseline_version_id=version,
+            details={"error": f"{type(exc).__name__}: {exc}"},
+        )
+
+
+# ---------------------------------------------------------------------------------------
+# fit to baseline
+
+
+@dataclass(frozen=True, slots=True)
+class _GofJob:
+    index: int  # row in the count table
+    line: str
+    baseline: BaselineRef
+    proportions: np.ndarray  # in table category order
+    limits: Any  # thresholds after overrides
+
+
+def _baseline_proportions(
+    table: CountTable, line_idx: int, baseline: BaselineRef
+) -> tuple[np.ndarray | None, Finding | None]:
+    line = table.lines[line_idx]
+    known = dict(zip(baseline.categories, baseline.proportions, strict=True))
+    counts = table.counts[line_idx]
+    missing = [c for j, c in enumerate(table.categories) if c not in known and counts[j] > 0]
+    if missing:
+        return None, Finding(
+            kind=KIND_BASELINE,
+            line=line,
+            verdict=UNKNOWN_CATEGORY,
+            reason=(
+                f"baseline {baseline.name!r} (version {baseline.version_id}) has no share for "
+                f"category {', '.join(missing)}, which has defects this shift"
+            ),
+            baseline_version_id=baseline.version_id,
+            n=int(counts.sum()),
+            details={"categories": missing},
+        )
+    props = np.array([float(known.get(c, 0.0)) for c in table.categories])
+    total = props.sum()
+    if not total > 0:
+        raise ValueError(f"baseline {baseline.name!r} has no positive share")
+    return props / total, None
+
+
+def _gof_job(table: CountTable, i: int, baseline: BaselineRef, limits: Any) -> _GofJob | Finding:
+    props, problem = _baseline_proportions(table, i, baseline)
+    if problem is not None:
+        return problem
+    assert props is not None
+    return _GofJob(i, table.lines[i], baseline, props, limits)
+
+
+def decision_levels(limits: Iterable[Any]) -> tuple[float, ...]:
+    """The levels near which ``auto`` p-values are refined: every alarm and watch level."""
+    out = {float(t.alarm_level) for t in limits} | {float(t.watch_level) for t in limits}
+    return tuple(sorted(out))
+
+
+def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int) -> list[Finding]:
+    observed = np.stack([table.counts[j.index] for j in jobs]).astype(np.int64)
+    props = np.stack([j.proportions for j in jobs])
+    result = qstats.fit_to_baseline(
+        observed, props, statistic="pearson", pvalue="auto", seed=seed, draws=draws,
+        levels=decision_levels(j.limits for j in jobs))
+    codes = tuple(table.categories)
+    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes) for i in range(len(jobs))]
+
+
+def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props: np.ndarray,
+                 codes: tuple[str, ...]) -> Finding:
+    limits = job.limits
+    n = int(observed.sum())
+    expected = np.asarray(_attr(result, "expected", i), dtype=float)
+    residuals = np.asarray(_attr(result, "adjusted_residuals", i), dtype=float)
+    common = {"kind": KIND_BASELINE, "line": job.line, "n": n,
+              "baseline_version_id": job.baseline.version_id,
+              "alarm_level": float(limits.alarm_level), "watch_level": float(limits.watch_level),
+              "categories": codes, "observed": tuple(float(x) for x in observed),
+              "expected": tuple(float(x) for x in expected),
+              "details": {"baseline": job.baseline.name,
+                          "effective": job.baseline.effective.isoformat()}}
+    if bool(_attr(result, "impossible", i)):
+        bad = [j for j in range(len(codes)) if props[j] <= 0 and observed[j] > 0]
+        words = ", ".join(f"{codes[j]} ({int(observed[j])})" for j in bad)
+        return Finding(
+            verdict=IMPOSSIBLE,
+            reason=f"defects in a category the baseline says never occurs: {words}",
+            method="impossible-category",
+            top_categories=tuple(
+                CategoryShift(codes[j], "up", math.inf, int(observed[j]), 0.0,
+                              float(observed[j] / n), 0.0) for j in bad),
+            **common)
+    if not bool(_attr(result, "tested", i)):
+        return Finding(verdict=NOT_TESTED,
+                       reason=str(_attr(result, "method_reason", i) or "not tested"), **common)
+    dof = int(_attr(result, "dof", i))
+    power = chisq_power(limits.min_effect_w, dof, n, limits.alarm_level)
+    enough = power >= limits.power
+    return Finding(
+        verdict=TESTED if enough else TOO_LITTLE_DATA,
+        reason=_power_reason(enough, power, limits.power, "w", limits.min_effect_w, n),
+        statistic=float(_attr(result, "statistic", i)),
+        dof=dof,
+        pvalue=float(_attr(result, "pvalue", i)),
+        effect_size=float(_attr(result, "effect_size", i)),
+        effect_name="w",
+        effect_floor=float(limits.min_effect_w),
+        power=power,
+        power_needed=float(limits.power),
+        method=str(_attr(result, "method", i)),
+        method_reason=_str_or_none(_attr(result, "method_reason", i)),
+        mc_se=_opt_float(_attr(result, "pvalue_se", i)),
+        min_expected=_opt_float(_attr(result, "min_expected", i)),
+        top_categories=top_shifts(codes, observed, expected, residuals, props),
+        adjusted_residuals=tuple(float(x) for x in residuals),
+        **common,
+    )
+
+
+def _str_or_none(value: Any) -> str | None:
+    return None if value is None else str(value)
+
+
+def _power_reason(enough: bool, power: float, needed: float, name: str, floor: float, n: int) -> str:
+    if enough:
+        return f"power {power:.2f} to see {name} >= {floor:g} with n = {n}"
+    return (
+        f"too little data to tell: power {power:.2f} < {needed:.2f} to see "
+        f"{name} >= {floor:g} with n = {n}"
+    )
+
+
+def fit_lines(
+    table: CountTable, baselines: Mapping[str, BaselineRef | None], thresholds: Any, *, seed: int
+) -> list[Finding]:
+    """Baseline findings for every line of ``table`` (one vectorised call for all lines;
+    line by line if that call fails, so one bad line becomes one fault finding)."""
+    out: dict[int, Finding] = {}
+    jobs: list[_GofJob] = []
+    for i, line in enumerate(table.lines):
+        baseline = baselines.get(line)
+        if baseline is None:
+            out[i] = Finding(kind=KIND_BASELINE, line=line, verdict=NO_BASELINE,
+                             reason=f"no baseline in force for line {line} on {table.shift.date}",
+                             n=int(table.counts[i].sum()))
+            continue
+        job = _contained(KIND_BASELINE, line, baseline.version_id,
+                         lambda i=i, b=baseline: _gof_job(table, i, b, thresholds_for(thresholds, b)))
+        if isinstance(job, Finding):
+            out[i] = job
+        else:
+            jobs.append(job)
+    gof_seed = derive_seed(seed, KIND_BASELINE)
+    draws = int(getattr(thresholds, "mc_draws", 10_000))
+    try:
+        found = _gof_batch(table, jobs, gof_seed, draws) if jobs else []
+    except Exception:
+        log.warning("baseline test of %d lines failed together; retrying line by line", len(jobs))
+        found = [
+            _contained(KIND_BASELINE, j.line, j.baseline.version_id,
+                       lambda j=j: _gof_batch(table, [j], gof_seed, draws)[0])
+            for j in jobs
+        ]
+    for job, finding in zip(jobs, found, strict=True):
+        out[job.index] = finding
+    return [out[i] for i in sorted(out)]
+
+
+# ---------------------------------------------------------------------------------------
+# between lines and each line vs the rest
+
+
+def compare_lines(table: CountTable, thresholds: Any, *, seed: int) -> list[Finding]:
+    """The lines x categories homogeneity finding, then one line-vs-rest finding per line."""
+    totals = table.counts.sum(axis=1)
+    rows = [i for i in range(len(table.lines)) if totals[i] > 0]
+    between = _contained(KIND_BETWEEN, None, None,
+                         lambda: _between(table, rows, thresholds, derive_seed(seed, KIND_BETWEEN)))
+    out = [between]
+    for i, line in enumerate(table.lines):
+        out.append(_contained(KIND_VS_REST, line, None,
+                              lambda i=i: _vs_rest(table, i, rows, thresholds,
+                                                   derive_seed(seed, KIND_VS_REST, table.lines[i]))))
+    return out
+
+
+def _between(table: CountTable, rows: Sequence[int], limits: Any, seed: int) -> Finding:
+    sub = table.counts[rows]
+    cols = [j for j in range(sub.shape[1]) if sub[:, j].sum() > 0] if rows else []
+    n = int(sub.sum())
+    dropped = [table.lines[i] for i in range(len(table.lines)) if i not in set(rows)]
+    base = {"kind": KIND_BETWEEN, "line": None, "n": n,
+            "details": {"lines": [table.lines[i] for i in rows], "lines_without_defects": dropped}}
+    if len(rows) < 2 or len(cols) < 2:
+        return Finding(verdict=NOT_TESTED,
+                       reason="fewer than 2 lines or 2 categories with defects this shift", **base)
+    sub = sub[:, cols]
+    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed)
+    r, c = sub.shape
+    dof = int(g.dof)
+    w_floor = limits.min_effect_v * math.sqrt(min(r, c) - 1)
+    power = chisq_power(w_floor, dof, n, limits.alarm_level)
+    enough = power >= limits.power
+    return Finding(
+        verdict=TESTED if enough else TOO_LITTLE_DATA,
+        reason=_power_reason(enough, power, limits.power, "V", limits.min_effect_v, n),
+        statistic=float(g.statistic), dof=dof, pvalue=float(g.pvalue),
+        effect_size=float(g.effect_size), effect_name="V",
+        effect_floor=float(limits.min_effect_v),
+        alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
+        power=power, power_needed=float(limits.power),
+        method=str(g.method), method_reason=_str_or_none(getattr(g, "method_reason", None)),
+        mc_se=_opt_float(getattr(g, "pvalue_se", None)),
+        min_expected=float(np.min(g.expected)),
+        categories=tuple(table.categories[j] for j in cols),
+        **{k: v for k, v in base.items() if k != "details"},
+        details={**base["details"],
+                 "effect_size_corrected": _opt_float(getattr(g, "effect_size_corrected", None))},
+    )
+
+
+def _vs_rest(table: CountTable, i: int, rows: Sequence[int], limits: Any, seed: int) -> Finding:
+    line = table.lines[i]
+    mine = table.counts[i]
+    rest = table.counts[[k for k in rows if k != i]].sum(axis=0) if rows else np.zeros_like(mine)
+    n_mine, n_rest = int(mine.sum()), int(rest.sum())
+    if n_mine == 0 or n_rest == 0:
+        why = "no defects on this line" if n_mine == 0 else "no defects on the other lines"
+        return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED, reason=why, n=n_mine)
+    cols = [j for j in range(len(mine)) if mine[j] + rest[j] > 0]
+    if len(cols) < 2:
+        return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED,
+                       reason="fewer than 2 categories with defects", n=n_mine)
+    sub = np.stack([mine[cols], rest[cols]]).astype(np.int64)
+    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed)
+    n = int(sub.sum())
+    dof = int(g.dof)
+    power = chisq_power(limits.min_effect_v, dof, n, limits.alarm_level)
+    enough = power >= limits.power
+    expected = np.asarray(g.expected, dtype=float)
+    residuals = np.asarray(g.adjusted_residuals, dtype=float)[0]
+    codes = [table.categories[j] for j in cols]
+    rest_share = sub[1] / sub[1].sum()
+    return Finding(
+        kind=KIND_VS_REST, line=line,
+        verdict=TESTED if enough else TOO_LITTLE_DATA,
+        reason=_power_reason(enough, power, limits.power, "V", limits.min_effect_v, n),
+        statistic=float(g.statistic), dof=dof, pvalue=float(g.pvalue),
+        effect_size=float(g.effect_size), effect_name="V",
+        effect_floor=float(limits.min_effect_v),
+        alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
+        power=power, power_needed=float(limits.power),
+        method=str(g.method), method_reason=_str_or_none(getattr(g, "method_reason", None)),
+        mc_se=_opt_float(getattr(g, "pvalue_se", None)),
+        n=n_mine, min_expected=float(expected.min()),
+        top_categories=top_shifts(codes, sub[0], expected[0], residuals, rest_share),
+        categories=tuple(codes),
+        observed=tuple(float(x) for x in sub[0]),
+        expected=tuple(float(x) for x in expected[0]),
+        adjusted_residuals=tuple(float(x) for x in residuals),
+        details={"rest_observed": [int(x) for x in sub[1]]},
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# defect rate
+
+
+def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | None,
+                 limits: Any) -> Finding | None:
+    """Defects per inspected unit against the baseline rate; None when there is nothing to test
+    (no baseline rate, or units inspected unknown)."""
+    if baseline is None or baseline.rate is None or not math.isfinite(units):
+        return None
+    common = {"kind": KIND_RATE, "line": line, "baseline_version_id": baseline.version_id,
+              "n": int(defects)}
+    if units <= 0:
+        return Finding(verdict=NOT_TESTED, reason="no units inspected this shift", **common)
+    mu0 = float(baseline.rate) * float(units)
+    if mu0 <= 0:
+        return Finding(verdict=NOT_TESTED, reason="baseline rate is 0", **common)
+    ratio = (defects / units) / float(baseline.rate)
+    power = poisson_power(mu0, limits.min_rate_ratio, limits.alarm_level)
+    enough = power >= limits.power
+    reason = (f"power {power:.2f} to see a rate ratio >= {limits.min_rate_ratio:g} "
+              f"with {units:g} units" if enough else
+              f"too little data to tell: power {power:.2f} < {limits.power:.2f} to see a rate "
+              f"ratio >= {limits.min_rate_ratio:g} with {units:g} units")
+    return Finding(
+        verdict=TESTED if enough else TOO_LITTLE_DATA, reason=reason,
+        statistic=float(defects), pvalue=poisson_upper_pvalue(int(defects), mu0),
+        effect_size=float(ratio), effect_name="rate ratio",
+        effect_floor=float(limits.min_rate_ratio),
+        alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
+        power=power, power_needed=float(limits.power),
+        method="exact-poisson", method_reason="exact one-sided Poisson test for an increase",
+        min_expected=mu0,
+        details={"units": float(units), "baseline_rate": float(baseline.rate),
+                 "expected_defects": mu0, "observed_rate": defects / units},
+        **common,
+    )
+
+
+def rate_lines(table: CountTable, baselines: Mapping[str, BaselineRef | None],
+               thresholds: Any) -> list[Finding]:
+    out = []
+    totals = table.counts.sum(axis=1)
+    for i, line in enumerate(table.lines):
+        b = baselines.get(line)
+        f = _contained(KIND_RATE, line, b.version_id if b else None,
+                       lambda i=i, line=line, b=b: rate_finding(
+                           line, int(totals[i]), float(table.units[i]), b, thresholds_for(thresholds, b)))
+        if f is not None:
+            out.append(f)
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# the shift
+
+
+def evaluate_table(
+    table: CountTable,
+    baselines: Mapping[str, BaselineRef | None],
+    thresholds: Any,
+    *,
+    seed: int,
+    extra: Iterable[Finding] = (),
+) -> tuple[Finding, ...]:
+    """Every finding for one shift.
+
+    ``baselines`` maps each line of ``table`` to the baseline in force (None when there is
+    none); ``thresholds`` is the config's ``[thresholds]``; ``seed`` the shift's Monte Carlo
+    seed (each test derives its own from it, so a test's numbers do not depend on which other
+    lines exist). ``extra`` holds per-line findings made elsewhere (sequential charts), appended
+    as they are. Order: baseline per line, rate per line, between-lines, line-vs-rest, extra.
+    """
+    _check_table(table)
+    findings: list[Finding] = []
+    findings += fit_lines(table, baselines, thresholds, seed=seed)
+    findings += rate_lines(table, baselines, thresholds)
+    findings += compare_lines(table, thresholds, seed=seed)
+    findings += list(extra)
+    return tuple(findings)
+
+
+def _check_table(table: CountTable) -> None:
+    from qcfit.errors import InvalidArgumentError
+
+    counts = np.asarray(table.counts)
+    if counts.shape != (len(table.lines), len(table.categories)):
+        raise InvalidArgumentError(
+            "table.counts", f"shape {counts.shape} does not match "
+            f"{len(table.lines)} lines x {len(table.categories)} categories")
+    if counts.size and counts.min() < 0:
+        bad = np.argwhere(counts < 0)[0]
+        raise InvalidArgumentError("table.counts", f"has a negative count at {list(map(int, bad))}")
+    if np.asarray(table.units).shape != (len(table.lines),):
+        raise InvalidArgumentError("table.units", "needs one value per line")

@@ -1,0 +1,145 @@
+"""SQL for the ``alarm`` and ``alarm_event`` tables.
+
+An alarm's identity is its unique key (shift_key, line_key, kind, baseline_key): the shift that
+raised it, the line ("" when plant-wide), the kind and the baseline version (0 when none).
+Functions take a Connection inside the caller's transaction and return plain dicts; every
+alarm row comes joined with the first and last shift it covers (date, name, start) and the
+baseline version's name and effective date.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+from sqlalchemy import and_, insert, or_, select, update
+from sqlalchemy.engine import Connection
+
+from qcfit.store.schema import alarm, alarm_event, baseline_version, shift
+
+_first = shift.alias("first_shift")
+_last = shift.alias("last_shift")
+
+
+def _alarm_select():
+    return (
+        select(
+            alarm,
+            _first.c.shift_date.label("shift_date"),
+            _first.c.shift_name.label("shift_name"),
+            _first.c.start_utc.label("shift_start_utc"),
+            _last.c.shift_date.label("last_shift_date"),
+            _last.c.shift_name.label("last_shift_name"),
+            _last.c.start_utc.label("last_shift_start_utc"),
+            baseline_version.c.name.label("baseline_name"),
+            baseline_version.c.effective.label("baseline_effective"),
+        )
+        .select_from(
+            alarm.outerjoin(_first, _first.c.id == alarm.c.first_shift_id)
+            .outerjoin(_last, _last.c.id == alarm.c.last_shift_id)
+            .outerjoin(baseline_version, baseline_version.c.id == alarm.c.baseline_version_id)
+        )
+    )
+
+
+def get_alarm(conn: Connection, alarm_id: int) -> dict[str, Any] | None:
+    row = conn.execute(_alarm_select().where(alarm.c.id == alarm_id)).mappings().first()
+    return dict(row) if row else None
+
+
+def find_by_key(
+    conn: Connection, shift_key: int, line_key: str, kind: str, baseline_key: int
+) -> dict[str, Any] | None:
+    row = conn.execute(
+        _alarm_select().where(
+            alarm.c.shift_key == shift_key,
+            alarm.c.line_key == line_key,
+            alarm.c.kind == kind,
+            alarm.c.baseline_key == baseline_key,
+        )
+    ).mappings().first()
+    return dict(row) if row else None
+
+
+def select_alarms(
+    conn: Connection,
+    *,
+    states: Sequence[str] | None = None,
+    line: str | None = None,
+    since_utc: dt.datetime | None = None,
+    first_shift_id: int | None = None,
+) -> list[dict[str, Any]]:
+    """Alarms, newest first; ``since_utc`` keeps alarms updated at or after it.
+    ``first_shift_id`` adds alarms raised by that shift whatever their state."""
+    query = _alarm_select()
+    conds = []
+    if states:
+        conds.append(alarm.c.state.in_(list(states)))
+    if line is not None:
+        conds.append(alarm.c.line == line)
+    if since_utc is not None:
+        conds.append(alarm.c.updated_utc >= since_utc)
+    if conds:
+        where = and_(*conds)
+        if first_shift_id is not None:
+            where = or_(where, alarm.c.first_shift_id == first_shift_id)
+        query = query.where(where)
+    rows = conn.execute(query.order_by(alarm.c.opened_utc.desc(), alarm.c.id.desc())).mappings()
+    return [dict(r) for r in rows]
+
+
+def insert_alarm(conn: Connection, values: Mapping[str, Any]) -> int:
+    result = conn.execute(insert(alarm).values(**values))
+    return int(result.inserted_primary_key[0])
+
+
+def update_alarm(conn: Connection, alarm_id: int, values: Mapping[str, Any]) -> None:
+    conn.execute(update(alarm).where(alarm.c.id == alarm_id).values(**values))
+
+
+def set_state(
+    conn: Connection, alarm_id: int, *, expected_state: str, state: str, at_utc: dt.datetime
+) -> bool:
+    """Compare-and-set the state (no lost update when two people act at once)."""
+    result = conn.execute(
+        update(alarm)
+        .where(alarm.c.id == alarm_id, alarm.c.state == expected_state)
+        .values(state=state, updated_utc=at_utc)
+    )
+    return result.rowcount == 1
+
+
+def insert_event(conn: Connection, values: Mapping[str, Any]) -> int:
+    result = conn.execute(insert(alarm_event).values(**values))
+    return int(result.inserted_primary_key[0])
+
+
+def has_event(conn: Connection, alarm_id: int, action: str, shift_id: int | None) -> bool:
+    row = conn.execute(
+        select(alarm_event.c.id).where(
+            alarm_event.c.alarm_id == alarm_id,
+            alarm_event.c.action == action,
+            alarm_event.c.shift_id == shift_id,
+        ).limit(1)
+    ).first()
+    return row is not None
+
+
+def events_of(conn: Connection, alarm_id: int) -> list[dict[str, Any]]:
+    """State changes of an alarm, oldest first, with the shift id's date and name."""
+    rows = conn.execute(
+        select(alarm_event, shift.c.shift_date, shift.c.shift_name)
+        .select_from(alarm_event.outerjoin(shift, shift.c.id == alarm_event.c.shift_id))
+        .where(alarm_event.c.alarm_id == alarm_id)
+        .order_by(alarm_event.c.id)
+    ).mappings()
+    return [dict(r) for r in rows]
+
+
+def shift_starts(conn: Connection, ids: Sequence[int]) -> dict[int, dt.datetime]:
+    """Shift row id -> start (naive UTC)."""
+    if not ids:
+        return {}
+    rows = conn.execute(select(shift.c.id, shift.c.start_utc).where(shift.c.id.in_(list(ids))))
+    return {int(r[0]): r[1] for r in rows}
