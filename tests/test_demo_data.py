@@ -321,6 +321,17 @@ def test_jump_flash_triples_on_im2_from_its_first_shift(
     im2_truth = truth[(truth["line"] == "IM2") & (truth["phase"] == "jump")]
     ratio = im2_truth["defects"].sum() / im2_truth["units_inspected"].sum() / 0.012
     assert ratio > 1.25
+    # SCENARIO.md: the rate crosses the 1.25 floor in every faulty shift but the first two.
+    assert _rate_crossings(truth, "IM2") == faulty[2:]
+
+
+def _rate_crossings(truth: pd.DataFrame, line: str) -> list[str]:
+    """Shifts where defects / (units x baseline rate) >= 1.25 with exact Poisson p < 0.002
+    (upper tail, scipy.stats.poisson as reference)."""
+    rows = truth[truth["line"] == line]
+    mu = rows["units_inspected"] * gen.LINES[line].rate
+    p = stats.poisson.sf(rows["defects"] - 1, mu)
+    return rows.loc[(rows["defects"] / mu >= 1.25) & (p < 0.002), "shift"].tolist()
 
 
 def test_drift_sink_mark_share_rises_linearly_on_im3(
@@ -351,6 +362,14 @@ def test_drift_is_slow_for_the_per_shift_test(counts: pd.DataFrame, config: Conf
     assert drift.index[np.argmax(drift.to_numpy() < ALPHA_ARL370)] == "2026-10-31_A"
     assert drift.index[np.argmax(drift.to_numpy() < 0.01)] == "2026-10-26_C"
     assert (drift.loc[:"2026-10-24_C"] > 0.01).all()  # nothing in the first week (w < 0.1)
+
+
+def test_drift_rate_crosses_the_floor_only_by_chance_late(truth: pd.DataFrame) -> None:
+    assert _rate_crossings(truth, "IM3") == ["2026-11-03_C", "2026-11-10_B", "2026-11-11_A",
+                                             "2026-11-14_A", "2026-11-14_C", "2026-11-17_B",
+                                             "2026-11-18_C"]
+    for line in ("IM1", "IM4", "IM5"):
+        assert _rate_crossings(truth, line) == [], line
 
 
 def test_sparse_line_im5(truth: pd.DataFrame) -> None:
