@@ -998,6 +998,8 @@ def canonical_baseline_toml(name: str, table: Mapping[str, Any]) -> str:
                 body[key] = sub
         elif key == "rate":
             body[key] = float(value)
+        elif key == "effective":
+            body[key] = _parse_date(value) or value
         else:
             body[key] = value
     outer = tomlkit.table(is_super_table=True)
@@ -1011,7 +1013,8 @@ def _parse_baseline(col: _Collector, name: str, raw: Any, cfg: dict[str, Any]
                     ) -> BaselineSpec | None:
     key = f"baseline.{name}"
     if not isinstance(raw, dict):
-        col.add(key, f"must be a table [{key}], not {_show(raw)}")
+        col.add(key, f"must be a table: write each baseline as its own [baseline.NAME] table,"
+                f" not {_show(raw)}")
         return None
     before = len(col.problems)
     _unknown(col, raw, BASELINE_KEYS, key)

@@ -593,6 +593,8 @@ normalize = false
     assert sa.toml_text.startswith("[baseline.glaze-lines]\n")
     assert tomllib.loads(sa.toml_text)["baseline"]["glaze-lines"]["proportions"] == {
         "DNT": 0.35, "OTH": 0.25, "SCR": 0.4}
+    as_string = parse(with_baselines(GLAZE.replace("2026-01-05", '"2026-01-05"'))).baselines[0]
+    assert as_string.content_hash == sa.content_hash
     changed = parse(with_baselines(GLAZE.replace("0.012", "0.013"))).baselines[0]
     assert changed.content_hash != sa.content_hash
 
@@ -808,3 +810,9 @@ def test_the_documented_complete_example_loads_and_uses_every_key(tmp_path, writ
 
     for key in (*raw["thresholds"], *raw["notify"], *raw["log"], *raw["sequential"]):
         assert f"``{key}``" in (module.__doc__ or ""), key
+
+
+def test_a_baseline_without_a_name_is_explained():
+    text = with_baselines('[baseline]\nlines = "*"\neffective = 2026-01-05\n')
+    found = {p.key: p.reason for p in problems_of(text)}
+    assert "[baseline.NAME]" in found["baseline.lines"]
