@@ -23,6 +23,7 @@ from qcfit.errors import EXIT_FAILURE, QcfitError
 COMMAND_MODULES: tuple[str, ...] = (
     "qcfit.cli.setup",
     "qcfit.cli.baseline",
+    "qcfit.cli.data",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"
