@@ -84,3 +84,35 @@ def _clear_qcfit_env(monkeypatch: pytest.MonkeyPatch) -> None:
     for key in list(os.environ):
         if key.startswith("QCFIT_"):
             monkeypatch.delenv(key, raising=False)
+
+
+@pytest.fixture
+def plant_store(tmp_path: Path, plant_config_text: str):
+    """An initialised SQLite store for the test plant (``plant_config_text``).
+
+    Returns a namespace with ``config_path``, ``config``, ``url``, ``engine`` (disposed
+    after the test) and ``dump()`` -> {table: sorted rows} of every table, for "the store
+    is unchanged" checks.
+    """
+    import datetime as dt
+    import sqlite3
+    from types import SimpleNamespace
+
+    from qcfit.config import load_config
+    from qcfit.store.engine import make_engine
+    from qcfit.store.migrate import init_store
+
+    config_path = _write_config(tmp_path, plant_config_text)
+    config = load_config(config_path)
+    db = tmp_path / "plant.sqlite"
+    url = f"sqlite:///{db}"
+    engine = make_engine(url)
+    init_store(engine, config, os_user="tester", now=dt.datetime(2026, 1, 1, tzinfo=dt.UTC))
+
+    def dump() -> dict[str, list[tuple]]:
+        with sqlite3.connect(db) as con:
+            names = [r[0] for r in con.execute("SELECT name FROM sqlite_master WHERE type = 'table'")]
+            return {n: sorted(con.execute(f'SELECT * FROM "{n}"').fetchall(), key=repr) for n in names}
+
+    yield SimpleNamespace(config_path=config_path, config=config, url=url, engine=engine, dump=dump)
+    engine.dispose()
