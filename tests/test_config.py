@@ -741,7 +741,7 @@ def test_store_url_from_config(tmp_path, write_config, plant_config_text, url, e
 _quarter = st.integers(0, 95)
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=150, deadline=None, derandomize=True)
 @given(st.lists(st.tuples(_quarter, _quarter), min_size=1, max_size=4))
 def test_overlap_check_agrees_with_a_minute_by_minute_count(spans):
     # Any set of shifts on a 15-minute grid: the config is rejected for overlap exactly
@@ -816,3 +816,14 @@ def test_a_baseline_without_a_name_is_explained():
     text = with_baselines('[baseline]\nlines = "*"\neffective = 2026-01-05\n')
     found = {p.key: p.reason for p in problems_of(text)}
     assert "[baseline.NAME]" in found["baseline.lines"]
+
+
+def test_paths_in_the_config_are_taken_from_its_folder(tmp_path, write_config, plant_config_text):
+    from qcfit.config import resolve_path, timezone_source
+
+    path = write_config(tmp_path, plant_config_text + '\n[report]\nfolder = "reports"\n')
+    config = load_config(path)
+    assert resolve_path(config, config.report.folder) == tmp_path.resolve() / "reports"
+    assert resolve_path(config, str(tmp_path / "abs.log")) == tmp_path / "abs.log"
+    source = timezone_source("America/Chicago")
+    assert source.startswith(("system time-zone database", "tzdata package"))
