@@ -195,13 +195,6 @@ def poisson_power(mu0: float, ratio: float, alpha: float) -> float:
     return float(sps.poisson.sf(c - 1, mu0 * ratio))
 
 
-def poisson_upper_pvalue(x: int, mu0: float) -> float:
-    """Exact one-sided p-value P(X >= x | Poisson(mu0)) for an increase in the defect rate."""
-    if x <= 0:
-        return 1.0
-    return float(sps.poisson.sf(x - 1, mu0))
-
-
 # ---------------------------------------------------------------------------------------
 # helpers over stats results
 
@@ -444,36 +437,37 @@ def fit_lines(
 
 def compare_lines(table: CountTable, thresholds: Any, *, seed: int) -> list[Finding]:
     """The lines x categories homogeneity finding, then one line-vs-rest finding per line."""
+    between = _contained(KIND_BETWEEN, None, None,
+                         lambda: _between(table, thresholds, derive_seed(seed, KIND_BETWEEN)))
+    return [between, *_each_vs_rest(table, thresholds, derive_seed(seed, KIND_VS_REST))]
+
+
+def _mc_options(limits: Any) -> dict[str, Any]:
+    return {"draws": int(getattr(limits, "mc_draws", 10_000)),
+            "levels": decision_levels([limits])}
+
+
+def _between(table: CountTable, limits: Any, seed: int) -> Finding:
     totals = table.counts.sum(axis=1)
     rows = [i for i in range(len(table.lines)) if totals[i] > 0]
-    between = _contained(KIND_BETWEEN, None, None,
-                         lambda: _between(table, rows, thresholds, derive_seed(seed, KIND_BETWEEN)))
-    out = [between]
-    for i, line in enumerate(table.lines):
-        out.append(_contained(KIND_VS_REST, line, None,
-                              lambda i=i: _vs_rest(table, i, rows, thresholds,
-                                                   derive_seed(seed, KIND_VS_REST, table.lines[i]))))
-    return out
-
-
-def _between(table: CountTable, rows: Sequence[int], limits: Any, seed: int) -> Finding:
-    sub = table.counts[rows]
-    cols = [j for j in range(sub.shape[1]) if sub[:, j].sum() > 0] if rows else []
-    n = int(sub.sum())
-    dropped = [table.lines[i] for i in range(len(table.lines)) if i not in set(rows)]
-    base = {"kind": KIND_BETWEEN, "line": None, "n": n,
-            "details": {"lines": [table.lines[i] for i in rows], "lines_without_defects": dropped}}
+    cols = [j for j in range(len(table.categories)) if table.counts[:, j].sum() > 0]
+    n = int(table.counts.sum())
+    details = {"lines": [table.lines[i] for i in rows],
+               "lines_without_defects": [ln for i, ln in enumerate(table.lines) if totals[i] == 0]}
     if len(rows) < 2 or len(cols) < 2:
-        return Finding(verdict=NOT_TESTED,
-                       reason="fewer than 2 lines or 2 categories with defects this shift", **base)
-    sub = sub[:, cols]
-    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed)
+        return Finding(kind=KIND_BETWEEN, line=None, verdict=NOT_TESTED, n=n, details=details,
+                       reason="fewer than 2 lines or 2 categories with defects this shift")
+    sub = np.ascontiguousarray(table.counts[np.ix_(rows, cols)], dtype=np.int64)
+    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed,
+                              **_mc_options(limits))
     r, c = sub.shape
     dof = int(g.dof)
     w_floor = limits.min_effect_v * math.sqrt(min(r, c) - 1)
     power = chisq_power(w_floor, dof, n, limits.alarm_level)
     enough = power >= limits.power
+    details["effect_size_corrected"] = _opt_float(g.effect_size_corrected)
     return Finding(
+        kind=KIND_BETWEEN, line=None, n=n,
         verdict=TESTED if enough else TOO_LITTLE_DATA,
         reason=_power_reason(enough, power, limits.power, "V", limits.min_effect_v, n),
         statistic=float(g.statistic), dof=dof, pvalue=float(g.pvalue),
@@ -481,56 +475,71 @@ def _between(table: CountTable, rows: Sequence[int], limits: Any, seed: int) -> 
         effect_floor=float(limits.min_effect_v),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
         power=power, power_needed=float(limits.power),
-        method=str(g.method), method_reason=_str_or_none(getattr(g, "method_reason", None)),
-        mc_se=_opt_float(getattr(g, "pvalue_se", None)),
-        min_expected=float(np.min(g.expected)),
+        method=str(g.method), method_reason=str(g.method_reason),
+        mc_se=_opt_float(g.pvalue_se), min_expected=_opt_float(g.min_expected),
         categories=tuple(table.categories[j] for j in cols),
-        **{k: v for k, v in base.items() if k != "details"},
-        details={**base["details"],
-                 "effect_size_corrected": _opt_float(getattr(g, "effect_size_corrected", None))},
+        details=details,
     )
 
 
-def _vs_rest(table: CountTable, i: int, rows: Sequence[int], limits: Any, seed: int) -> Finding:
+def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
+    counts = np.ascontiguousarray(table.counts, dtype=np.int64)
+    try:
+        res = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="auto", seed=seed,
+                                          **_mc_options(limits))
+        return [_contained(KIND_VS_REST, ln, None,
+                           lambda i=i: _vs_rest_finding(table, counts, i, res, i, limits))
+                for i, ln in enumerate(table.lines)]
+    except Exception:
+        log.warning("line-vs-rest tests failed together; retrying line by line")
+    out = []
+    for i, line in enumerate(table.lines):
+        def one(i: int = i) -> Finding:
+            pair = np.stack([counts[i], counts.sum(axis=0) - counts[i]])
+            res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
+                                              seed=seed, **_mc_options(limits))
+            return _vs_rest_finding(table, counts, i, res, 0, limits)
+        out.append(_contained(KIND_VS_REST, line, None, one))
+    return out
+
+
+def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r: int,
+                     limits: Any) -> Finding:
     line = table.lines[i]
-    mine = table.counts[i]
-    rest = table.counts[[k for k in rows if k != i]].sum(axis=0) if rows else np.zeros_like(mine)
-    n_mine, n_rest = int(mine.sum()), int(rest.sum())
-    if n_mine == 0 or n_rest == 0:
-        why = "no defects on this line" if n_mine == 0 else "no defects on the other lines"
-        return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED, reason=why, n=n_mine)
-    cols = [j for j in range(len(mine)) if mine[j] + rest[j] > 0]
-    if len(cols) < 2:
-        return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED,
-                       reason="fewer than 2 categories with defects", n=n_mine)
-    sub = np.stack([mine[cols], rest[cols]]).astype(np.int64)
-    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed)
-    n = int(sub.sum())
-    dof = int(g.dof)
-    power = chisq_power(limits.min_effect_v, dof, n, limits.alarm_level)
+    mine = counts[i]
+    col = counts.sum(axis=0)
+    n_mine = int(mine.sum())
+    if not bool(res.tested[r]):
+        return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED, n=n_mine,
+                       reason=str(res.method_reason[r]))
+    cols = [j for j in range(len(mine)) if col[j] > 0]
+    rest = (col - mine)[cols]
+    total = int(col.sum())
+    dof = int(res.dof[r])
+    power = chisq_power(limits.min_effect_v, dof, total, limits.alarm_level)
     enough = power >= limits.power
-    expected = np.asarray(g.expected, dtype=float)
-    residuals = np.asarray(g.adjusted_residuals, dtype=float)[0]
-    codes = [table.categories[j] for j in cols]
-    rest_share = sub[1] / sub[1].sum()
+    expected = np.asarray(res.expected[r], dtype=float)[cols]
+    residuals = np.asarray(res.adjusted_residuals[r], dtype=float)[cols]
+    codes = tuple(table.categories[j] for j in cols)
+    rest_share = rest / rest.sum() if rest.sum() > 0 else np.zeros(len(cols))
     return Finding(
         kind=KIND_VS_REST, line=line,
         verdict=TESTED if enough else TOO_LITTLE_DATA,
-        reason=_power_reason(enough, power, limits.power, "V", limits.min_effect_v, n),
-        statistic=float(g.statistic), dof=dof, pvalue=float(g.pvalue),
-        effect_size=float(g.effect_size), effect_name="V",
+        reason=_power_reason(enough, power, limits.power, "V", limits.min_effect_v, total),
+        statistic=float(res.statistic[r]), dof=dof, pvalue=float(res.pvalue[r]),
+        effect_size=float(res.effect_size[r]), effect_name="V",
         effect_floor=float(limits.min_effect_v),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
         power=power, power_needed=float(limits.power),
-        method=str(g.method), method_reason=_str_or_none(getattr(g, "method_reason", None)),
-        mc_se=_opt_float(getattr(g, "pvalue_se", None)),
-        n=n_mine, min_expected=float(expected.min()),
-        top_categories=top_shifts(codes, sub[0], expected[0], residuals, rest_share),
-        categories=tuple(codes),
-        observed=tuple(float(x) for x in sub[0]),
-        expected=tuple(float(x) for x in expected[0]),
+        method=str(res.method[r]), method_reason=str(res.method_reason[r]),
+        mc_se=_opt_float(res.pvalue_se[r]), n=n_mine,
+        min_expected=float(expected.min()) if len(expected) else None,
+        top_categories=top_shifts(codes, mine[cols], expected, residuals, rest_share),
+        categories=codes,
+        observed=tuple(float(x) for x in mine[cols]),
+        expected=tuple(float(x) for x in expected),
         adjusted_residuals=tuple(float(x) for x in residuals),
-        details={"rest_observed": [int(x) for x in sub[1]]},
+        details={"rest_observed": [int(x) for x in rest]},
     )
 
 
@@ -550,7 +559,8 @@ def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | 
         return Finding(verdict=NOT_TESTED, reason="no units inspected this shift", **common)
     mu0 = float(baseline.rate) * float(units)
     if mu0 <= 0:
-        return Finding(verdict=NOT_TESTED, reason="baseline rate is 0", **common)
+        return Finding(verdict=NOT_TESTED, reason="baseline rate is 0: nothing to compare with",
+                       **common)
     ratio = (defects / units) / float(baseline.rate)
     power = poisson_power(mu0, limits.min_rate_ratio, limits.alarm_level)
     enough = power >= limits.power
@@ -558,9 +568,10 @@ def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | 
               f"with {units:g} units" if enough else
               f"too little data to tell: power {power:.2f} < {limits.power:.2f} to see a rate "
               f"ratio >= {limits.min_rate_ratio:g} with {units:g} units")
+    test = qstats.rate_test(int(defects), float(units), float(baseline.rate))
     return Finding(
         verdict=TESTED if enough else TOO_LITTLE_DATA, reason=reason,
-        statistic=float(defects), pvalue=poisson_upper_pvalue(int(defects), mu0),
+        statistic=float(defects), pvalue=float(test.pvalue),
         effect_size=float(ratio), effect_name="rate ratio",
         effect_floor=float(limits.min_rate_ratio),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
