@@ -1287,7 +1287,9 @@ def _syntax_problem(exc: tomllib.TOMLDecodeError, text: str) -> Problem:
     m = _TOML_WHERE.search(message)
     reason = _TOML_WHERE.sub("", message).strip()
     if not m:
-        return Problem("TOML syntax", reason)
+        reason = reason.replace("(at end of document)", "").strip()
+        last = max(1, len(text.splitlines()))
+        return Problem(f"line {last}, end of file", f"{reason} (something opened is never closed?)")
     line_no, col_no = int(m[1]), int(m[2])
     lines = text.splitlines()
     source = lines[line_no - 1] if 0 < line_no <= len(lines) else ""

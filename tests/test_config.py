@@ -827,3 +827,19 @@ def test_paths_in_the_config_are_taken_from_its_folder(tmp_path, write_config, p
     assert resolve_path(config, str(tmp_path / "abs.log")) == tmp_path / "abs.log"
     source = timezone_source("America/Chicago")
     assert source.startswith(("system time-zone database", "tzdata package"))
+
+
+def test_syntax_errors_at_the_end_and_duplicate_keys(tmp_path, write_config, plant_config_text):
+    unclosed = write_config(tmp_path, plant_config_text + 'holidays = [2026-12-25,\n')
+    with pytest.raises(ConfigError) as info:
+        load_config(unclosed)
+    (problem,) = info.value.problems
+    assert problem.key == f"line {len(plant_config_text.splitlines()) + 1}, end of file"
+    twice = write_config(tmp_path, plant_config_text.replace('L2 = "Line 2"', 'L1 = "again"'),
+                         name="twice.toml")
+    with pytest.raises(ConfigError) as info:
+        load_config(twice)
+    (problem,) = info.value.problems
+    line_no = plant_config_text.splitlines().index('L2 = "Line 2"') + 1
+    assert problem.key.startswith(f"line {line_no}, column")
+    assert problem.reason.startswith("Cannot overwrite a value")
