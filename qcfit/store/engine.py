@@ -8,6 +8,9 @@ SQLite discipline, set on every new DBAPI connection of an engine made here:
   every transaction is begun by us: ``BEGIN IMMEDIATE`` for writes, so a second writer
   waits for the first instead of failing or losing an update, and a deferred ``BEGIN`` for
   :func:`read_tx`. This works on Python 3.11 (no ``sqlite3.Connection.autocommit`` there).
+  Any other transaction (``engine.begin()``, or the autobegin of a statement on
+  ``engine.connect()``) is IMMEDIATE too: read through :func:`read_tx`, or a forgotten
+  open connection holds the write lock until it commits or closes.
 
 Every SQLAlchemy error raised inside :func:`write_tx`, :func:`read_tx` or
 :func:`translate_errors` becomes a :class:`~qcfit.errors.StoreError` (or
