@@ -320,3 +320,36 @@ def test_vectorized_assign_agrees_with_shift_at(zone, window, shifts, sunday_off
             near = calendar.instances_between(moment - dt.timedelta(days=2),
                                               moment + dt.timedelta(days=1))
             assert not any(i.start <= moment < i.end for i in near)
+
+
+@settings(max_examples=100, deadline=None, derandomize=True)
+@given(zone=st.sampled_from(_ZONES), window=st.sampled_from(_WINDOWS),
+       offset=st.integers(0, _SPAN_US))
+def test_localize_round_trips_every_instant(zone, window, offset):
+    # The local wall time of any instant reads back to that instant as its earlier or later
+    # reading; only in the repeated hour do the two readings differ.
+    calendar = cal(zone)
+    moment = window + dt.timedelta(microseconds=offset)
+    naive = moment.astimezone(ZoneInfo(zone)).replace(tzinfo=None, fold=0)
+    earlier = calendar.localize(naive, ambiguous="earlier")
+    later = calendar.localize(naive, ambiguous="later")
+    assert moment in (earlier, later) and earlier <= later
+    if earlier != later:
+        assert later - earlier == dt.timedelta(hours=1)
+        with pytest.raises(InvalidArgumentError):
+            calendar.localize(naive)
+    else:
+        assert calendar.localize(naive) == moment
+
+
+@settings(max_examples=100, deadline=None, derandomize=True)
+@given(zone=st.sampled_from(_ZONES), window=st.sampled_from(_WINDOWS),
+       minutes=st.lists(st.integers(0, 8 * 24 * 60 - 1), min_size=2, max_size=30))
+def test_wall_time_to_instant_never_runs_backwards(zone, window, minutes):
+    # The property that keeps shifts from overlapping after conversion: a later wall time
+    # never gives an earlier instant (gap times collapse onto the change, nothing reverses).
+    calendar = cal(zone)
+    start = window.replace(tzinfo=None)
+    walls = sorted(start + dt.timedelta(minutes=m) for m in minutes)
+    instants = [calendar.wall_to_instant(w.date(), w.time()) for w in walls]
+    assert instants == sorted(instants)
