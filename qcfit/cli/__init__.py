@@ -24,6 +24,8 @@ COMMAND_MODULES: tuple[str, ...] = (
     "qcfit.cli.setup",
     "qcfit.cli.baseline",
     "qcfit.cli.data",
+    "qcfit.cli.evaluate",
+    "qcfit.cli.alarms",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"
