@@ -69,8 +69,7 @@ class ShiftCalendar:
         non_production_weekdays: Iterable[int] = (),
         non_production_dates: Iterable[dt.date] = (),
     ) -> None:
-        if not shifts:
-            raise InvalidArgumentError("shifts", "a calendar needs at least one shift")
+        _check_shifts(shifts)
         self._tz = tz
         self._shifts = tuple(sorted(shifts, key=lambda s: (s.start, s.name)))
         self._by_name = {s.name: s for s in self._shifts}
@@ -300,6 +299,32 @@ class ShiftCalendar:
             index = np.where(hit, pos, -1).astype(np.int64)
         index.setflags(write=False)
         return [r[0] for r in rows], index
+
+
+def _clock_arc(spec: ShiftSpec) -> tuple[float, float]:
+    """(start, length) of a shift on the 24-hour clock, in seconds; end <= start wraps."""
+    start = spec.start.hour * 3600 + spec.start.minute * 60 + spec.start.second
+    end = spec.end.hour * 3600 + spec.end.minute * 60 + spec.end.second
+    start += spec.start.microsecond / 1e6
+    end += spec.end.microsecond / 1e6
+    return start, ((end - start) % 86400) or 86400.0
+
+
+def _check_shifts(shifts: Sequence[ShiftSpec]) -> None:
+    """At least one shift, unique names, no two overlapping on the 24-hour clock (a Config
+    guarantees this; checked again for calendars built directly)."""
+    if not shifts:
+        raise InvalidArgumentError("shifts", "a calendar needs at least one shift")
+    names = [s.name for s in shifts]
+    if len(set(names)) != len(names):
+        raise InvalidArgumentError("shifts", f"shift names repeat: {', '.join(names)}")
+    arcs = [_clock_arc(s) for s in shifts]
+    for i in range(len(arcs)):
+        for j in range(i + 1, len(arcs)):
+            (a, la), (b, lb) = arcs[i], arcs[j]
+            if (b - a) % 86400 < la or (a - b) % 86400 < lb:
+                raise InvalidArgumentError(
+                    "shifts", f"shift {shifts[j].name} overlaps shift {shifts[i].name}")
 
 
 def _as_utc_us(values: Any) -> np.ndarray:

@@ -249,6 +249,10 @@ def test_naive_input_is_refused():
             call()
     with pytest.raises(InvalidArgumentError, match="at least one shift"):
         ShiftCalendar(ZoneInfo("UTC"), ())
+    with pytest.raises(InvalidArgumentError, match="B overlaps shift A"):
+        ShiftCalendar(ZoneInfo("UTC"), (ShiftSpec("A", T(22), T(6)), ShiftSpec("B", T(5), T(9))))
+    with pytest.raises(InvalidArgumentError, match="names repeat"):
+        ShiftCalendar(ZoneInfo("UTC"), (ShiftSpec("A", T(6), T(9)), ShiftSpec("A", T(9), T(12))))
 
 
 def test_from_config(tmp_path, plant_config_text, write_config):
