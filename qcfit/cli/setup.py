@@ -23,9 +23,7 @@ def init_command(ctx: click.Context) -> None:
     """
     a = app(ctx)
     config = a.config()
-    report = init_store(
-        a.engine(), config, os_user=_os_user(), now=dt.datetime.now(dt.UTC)
-    )
+    report = init_store(a.engine(), config, os_user=_os_user(), now=dt.datetime.now(dt.UTC))
     for text in describe(report):
         click.echo(text)
 
@@ -44,12 +42,15 @@ def describe(report: InitReport) -> list[str]:
         out.append(f"schema: copy of the store before the upgrade: {schema.backup}")
     ref = report.reference
     out += _listed("lines added", ref.lines_added)
-    out += _listed("lines renamed", [f"{c} ({old!r} -> {new!r})" for c, old, new in ref.lines_renamed])
+    out += _listed(
+        "lines renamed", [f"{c} ({old!r} -> {new!r})" for c, old, new in ref.lines_renamed]
+    )
     out += _listed("lines active again", ref.lines_reactivated)
     out += _listed("lines marked inactive (not in the config; history kept)", ref.lines_deactivated)
     out += _listed("categories added", ref.categories_added)
     out += _listed(
-        "categories renamed", [f"{c} ({old!r} -> {new!r})" for c, old, new in ref.categories_renamed]
+        "categories renamed",
+        [f"{c} ({old!r} -> {new!r})" for c, old, new in ref.categories_renamed],
     )
     out += _listed("categories kept but not in the config", ref.categories_not_in_config)
     short = f"version {report.config_version_id}"

@@ -321,5 +321,3 @@ def _first_line(exc: BaseException) -> str:
 def _pgcode(exc: BaseException) -> str | None:
     orig = getattr(exc, "orig", None)
     return getattr(orig, "sqlstate", None) or getattr(orig, "pgcode", None)
-
-

@@ -40,9 +40,10 @@ from alembic.script.revision import ResolutionError
 from alembic.util import CommandError
 from sqlalchemy import MetaData, inspect, text
 from sqlalchemy.engine import Connection, Engine
+from sqlalchemy.exc import SQLAlchemyError
 
 import qcfit
-from qcfit.errors import SchemaError, StoreError
+from qcfit.errors import QcfitError, SchemaError, StoreError
 from qcfit.store.engine import (
     BEGIN_OPTION,
     NOT_INITIALISED,
@@ -265,7 +266,15 @@ def _upgrade_in(conn: Connection, location: Path) -> UpgradeReport:
         _refuse_unmanaged_tables(conn)
     cfg = alembic_config(location)
     cfg.attributes["connection"] = conn
-    command.upgrade(cfg, "head")
+    try:
+        command.upgrade(cfg, "head")
+    except (QcfitError, SQLAlchemyError):
+        raise
+    except Exception as exc:  # a migration script failed: everything is rolled back
+        raise SchemaError(
+            f"schema upgrade from revision {before or '(empty store)'} failed: "
+            f"{type(exc).__name__}: {exc}; nothing was changed"
+        ) from exc
     after = current_revision(conn)
     if after is None:  # pragma: no cover - alembic always writes the version row
         raise SchemaError("upgrade finished without a schema revision")
@@ -295,7 +304,9 @@ def migration_tx(engine: Engine) -> Iterator[Connection]:
             conn.execution_options(**{BEGIN_OPTION: "IMMEDIATE"})
             with conn.begin():
                 if conn.dialect.name == "postgresql":
-                    conn.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": MIGRATION_LOCK_KEY})
+                    conn.execute(
+                        text("SELECT pg_advisory_xact_lock(:k)"), {"k": MIGRATION_LOCK_KEY}
+                    )
                 yield conn
                 if sqlite:
                     _check_foreign_keys(conn)

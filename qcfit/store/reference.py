@@ -89,8 +89,11 @@ def sync_reference(
     stored_cats = {r.code: r.name for r in conn.execute(select(category))}
 
     added = [c for c in lines if c not in stored_lines]
-    renamed = [(c, stored_lines[c][0], n) for c, n in lines.items()
-               if c in stored_lines and stored_lines[c][0] != n]
+    renamed = [
+        (c, stored_lines[c][0], n)
+        for c, n in lines.items()
+        if c in stored_lines and stored_lines[c][0] != n
+    ]
     reactivated = [c for c in lines if c in stored_lines and not stored_lines[c][1]]
     deactivated = sorted(c for c, (_, act) in stored_lines.items() if act and c not in lines)
     if added:
@@ -103,8 +106,11 @@ def sync_reference(
         conn.execute(update(line).where(line.c.code.in_(deactivated)).values(active=False))
 
     cat_added = [c for c in categories if c not in stored_cats]
-    cat_renamed = [(c, stored_cats[c], n) for c, n in categories.items()
-                   if c in stored_cats and stored_cats[c] != n]
+    cat_renamed = [
+        (c, stored_cats[c], n)
+        for c, n in categories.items()
+        if c in stored_cats and stored_cats[c] != n
+    ]
     if cat_added:
         conn.execute(insert(category), [{"code": c, "name": categories[c]} for c in cat_added])
     for code, _, new in cat_renamed:

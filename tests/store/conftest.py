@@ -64,7 +64,9 @@ def drop_pg_schema(admin: Engine, schema: str) -> None:
         pytest.param("postgresql", marks=pytest.mark.postgres),
     ]
 )
-def store_url(request: pytest.FixtureRequest, tmp_path: Path, pg_admin: Engine | None) -> Iterator[str]:
+def store_url(
+    request: pytest.FixtureRequest, tmp_path: Path, pg_admin: Engine | None
+) -> Iterator[str]:
     """URL of an empty store: a new SQLite file, or a new PostgreSQL schema."""
     if request.param == "sqlite":
         yield f"sqlite:///{tmp_path / 'store.sqlite'}"
