@@ -80,9 +80,10 @@ def write_config():
 
 @pytest.fixture(autouse=True)
 def _clear_qcfit_env(monkeypatch: pytest.MonkeyPatch) -> None:
-    """No test sees the developer's QCFIT_* environment variables."""
+    """No test sees the developer's QCFIT_* environment variables (QCFIT_CONFIG, QCFIT_STORE,
+    ...). Test-infrastructure variables named QCFIT_TEST_* (e.g. QCFIT_TEST_PG_URL) stay."""
     for key in list(os.environ):
-        if key.startswith("QCFIT_"):
+        if key.startswith("QCFIT_") and not key.startswith("QCFIT_TEST_"):
             monkeypatch.delenv(key, raising=False)
 
 

@@ -843,3 +843,20 @@ def test_syntax_errors_at_the_end_and_duplicate_keys(tmp_path, write_config, pla
     line_no = plant_config_text.splitlines().index('L2 = "Line 2"') + 1
     assert problem.key.startswith(f"line {line_no}, column")
     assert problem.reason.startswith("Cannot overwrite a value")
+
+
+def test_the_shared_fixture_in_a_fresh_pytest(tmp_path):
+    # Run a one-test pytest session with QCFIT_CONFIG and QCFIT_TEST_PG_URL set: the first is
+    # hidden from the test, the second is kept.
+    conftest = Path(__file__).with_name("conftest.py")
+    (tmp_path / "conftest.py").write_text(conftest.read_text(encoding="utf-8"), encoding="utf-8")
+    (tmp_path / "test_env.py").write_text(
+        "import os\n\ndef test_env():\n"
+        "    assert 'QCFIT_CONFIG' not in os.environ\n"
+        "    assert os.environ['QCFIT_TEST_PG_URL'] == 'postgresql://x'\n", encoding="utf-8")
+    env = dict(os.environ, QCFIT_CONFIG="/nonexistent.toml", QCFIT_TEST_PG_URL="postgresql://x")
+    out = subprocess.run([sys.executable, "-m", "pytest", "-q", "-p", "no:cacheprovider",
+                          "-p", "no:xdist", str(tmp_path)], cwd=tmp_path, env=env,
+                         capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stdout + out.stderr
+    assert "1 passed" in out.stdout
