@@ -24,7 +24,6 @@ from dataclasses import dataclass, field, replace
 from typing import Any, Literal
 
 import numpy as np
-from scipy import optimize
 from scipy import stats as sps
 from scipy.special import xlogy
 
@@ -50,7 +49,6 @@ __all__ = [
     "baselines_in_force",
     "block_proportions",
     "fit_study",
-    "poisson_rate_interval",
     "version_diff",
 ]
 
@@ -407,29 +405,41 @@ def _adjust(p: np.ndarray, method: str) -> np.ndarray:
 
 
 def _mix_flags(win: _Window, idx: np.ndarray, number: int) -> list[ShiftFlag]:
-    from qcfit.stats import fit_to_baseline
+    """Each kept shift with defects against the pooled rest of the kept shifts (2 x k test of
+    homogeneity, ``qcfit.stats.compare_each_to_rest``, p-value ``auto``); the effect is
+    Cohen's w of the shift's mix against the rest's, w = sqrt(sum (p_j - r_j)^2 / r_j)."""
+    from qcfit.stats import compare_each_to_rest
 
     s = win.settings
-    n = win.counts[idx].sum(axis=1)
-    tested = idx[n > 0]
-    pooled = win.counts[tested].sum(axis=0)
-    support = pooled > 0
-    if len(tested) < 2 or support.sum() < 2:
+    tested = idx[win.counts[idx].sum(axis=1) > 0]
+    table = win.counts[tested]
+    if len(tested) < 2 or (table.sum(axis=0) > 0).sum() < 2:
         return []
-    res = fit_to_baseline(win.counts[tested][:, support], pooled[support] / pooled.sum(),
-                          statistic="pearson", pvalue="auto", seed=s.seed)
-    p = np.asarray(res.pvalue, dtype=float)
+    res = compare_each_to_rest(table, statistic="pearson", pvalue="auto", seed=s.seed)
+    p = np.where(np.asarray(res.tested), np.asarray(res.pvalue, dtype=float), 1.0)
     adj = _adjust(p, s.adjust)
-    w = np.asarray(res.effect_size, dtype=float)
+    w = _w_against_rest(table)
     resid = np.asarray(res.adjusted_residuals, dtype=float)
-    codes = [c for c, keep in zip(win.categories, support, strict=True) if keep]
     out = []
     for j in np.flatnonzero((adj < s.outlier_level) & (w >= s.min_effect_w)):
-        reason = (f"mix differs from the pooled window (w = {w[j]:.3f}, adjusted p = "
-                  f"{_fmt_p(adj[j])}){_top_categories(resid[j], codes)}")
+        reason = (f"mix differs from the rest of the window (w = {w[j]:.3f}, adjusted p = "
+                  f"{_fmt_p(adj[j])}){_top_categories(resid[j], win.categories)}")
         out.append(ShiftFlag(win.ids[tested[j]], number, "mix", float(p[j]), float(adj[j]),
-                             float(w[j]), int(win.counts[tested[j]].sum()), reason, False))
+                             float(w[j]), int(table[j].sum()), reason, False))
     return out
+
+
+def _w_against_rest(table: np.ndarray) -> np.ndarray:
+    """Cohen's w of each row's shares against the pooled other rows' shares (where the rest
+    has no defect in a category the pooled window's share stands in)."""
+    total = table.sum(axis=0).astype(float)
+    rest = total[None, :] - table
+    n = table.sum(axis=1, keepdims=True).astype(float)
+    ref = rest / np.maximum(rest.sum(axis=1, keepdims=True), 1.0)
+    ref = np.where(ref > 0, ref, total / total.sum())
+    keep = total > 0
+    dev = (table / n - ref)[:, keep]
+    return np.sqrt(np.sum(dev**2 / ref[:, keep], axis=1))
 
 
 def _top_categories(resid: np.ndarray, codes: Sequence[str]) -> str:
@@ -589,36 +599,20 @@ def _proportions(win: _Window, kept: np.ndarray) -> ProportionEstimate:
     )
 
 
-def poisson_rate_interval(defects: int, units: float, confidence: float = DEFAULT_CONFIDENCE
-                          ) -> tuple[float, float]:
-    """Exact (Garwood) interval for a Poisson rate: defects / units.
-
-    lower = chi2.ppf(a/2, 2D) / (2U) (0 when D = 0), upper = chi2.ppf(1 - a/2, 2D + 2) / (2U),
-    a = 1 - confidence (Garwood, "Fiducial limits for the Poisson distribution",
-    Biometrika 28, 1936).
-    """
-    if units <= 0 or not math.isfinite(units):
-        raise InvalidArgumentError("units", f"must be a positive number, not {units!r}")
-    if defects < 0:
-        raise InvalidArgumentError("defects", f"must be >= 0, not {defects!r}")
-    a = 1.0 - confidence
-    lower = 0.0 if defects == 0 else float(sps.chi2.ppf(a / 2, 2 * defects)) / (2 * units)
-    upper = float(sps.chi2.ppf(1 - a / 2, 2 * defects + 2)) / (2 * units)
-    return lower, upper
-
-
 def _rate(win: _Window, kept: np.ndarray) -> RateEstimate | None:
     known = kept[np.isfinite(win.units[kept]) & (win.units[kept] > 0)]
     if len(known) == 0:
         return None
     d = int(win.counts[known].sum())
     u = float(win.units[known].sum())
+    from qcfit.stats import poisson_rate_interval
+
     lower, upper = poisson_rate_interval(d, u, win.settings.confidence)
     return RateEstimate(d, u, len(known), d / u, lower, upper, win.settings.confidence)
 
 
 def _power(win: _Window, kept: np.ndarray) -> PowerCheck:
-    from qcfit.stats import chisq_power, sample_size_for_power
+    from qcfit.stats import chisq_power, detectable_effect, sample_size_for_power
 
     s = win.settings
     k = len(win.categories)
@@ -629,8 +623,7 @@ def _power(win: _Window, kept: np.ndarray) -> PowerCheck:
     enough = total >= needed
     per_shift = total / len(kept)
     more = 0 if enough else int(math.ceil((needed - total) / per_shift))
-    detectable = float(optimize.brentq(
-        lambda w: chisq_power(w, dof, total, s.alpha) - s.power, 1e-6, 50.0, xtol=1e-9))
+    detectable = float(detectable_effect(total, dof, s.alpha, s.power))
     return PowerCheck(s.min_effect_w, s.alpha, s.power, dof, total, power, needed,
                       detectable, enough, more)
 

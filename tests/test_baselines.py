@@ -15,11 +15,14 @@ from scipy import stats as sps
 
 from qcfit.baseline_write import add_baseline_block
 from qcfit.baselines import (
+    ARL_FIGURES,
+    FitSettings,
     _g2_splits,
+    baseline_block,
     baseline_in_force,
     baselines_in_force,
     block_proportions,
-    poisson_rate_interval,
+    fit_study,
     version_diff,
 )
 from qcfit.calendar import ShiftCalendar
@@ -254,26 +257,6 @@ def test_g2_of_every_split_matches_scipy():
         assert ours[s - 1] == pytest.approx(ref, rel=1e-10)
 
 
-@pytest.mark.parametrize("d,u", [(0, 1.0), (1, 1.0), (10, 1.0), (37, 5210.0), (812, 61234.5)])
-def test_poisson_rate_interval_matches_statsmodels_exact(d, u):
-    from statsmodels.stats.rates import confint_poisson
-
-    lo, hi = poisson_rate_interval(d, u, 0.95)
-    # statsmodels (reference library) "exact-c": Garwood's central interval
-    ref = confint_poisson(d, u, method="exact-c", alpha=0.05)
-    assert lo == pytest.approx(float(ref[0]), abs=1e-12) and hi == pytest.approx(float(ref[1]), rel=1e-10)
-
-
-def test_poisson_rate_interval_table_values():
-    # Garwood (1936) limits as tabulated for 95% two-sided (values from memory, and they are
-    # chi2.ppf(0.975, 2)/2 = 3.689 and chi2.ppf(0.025, 20)/2 = 4.795, chi2.ppf(0.975, 22)/2 = 18.39)
-    assert poisson_rate_interval(0, 1.0) == (0.0, pytest.approx(3.689, abs=5e-4))
-    lo, hi = poisson_rate_interval(10, 1.0)
-    assert lo == pytest.approx(4.795, abs=5e-4) and hi == pytest.approx(18.39, abs=5e-3)
-    with pytest.raises(InvalidArgumentError, match="units"):
-        poisson_rate_interval(3, 0.0)
-
-
 # --------------------------------------------------------------------------- writing the block
 
 
@@ -347,3 +330,192 @@ def test_write_refuses_a_file_changed_since_it_was_read(tmp_path, plant_config_t
     with pytest.raises(BaselineError, match="changed since it was read"):
         add_baseline_block(path, BLOCK, name="l1-fit", now=NOW, expected_hash="0" * 64)
     _untouched(tmp_path, path, before)
+
+
+# --------------------------------------------------------------------------- the Phase I study
+
+P0 = np.array([0.30, 0.25, 0.15, 0.12, 0.10, 0.08])  # invented in-control mix (CATS order)
+
+
+def _window(seed: int, m: int = 150, rate: float = 0.012, mean_units: float = 16000.0,
+            p: np.ndarray = P0) -> tuple[np.ndarray, np.ndarray, list[str]]:
+    """m in-control shifts: units ~ Normal, defects ~ Poisson(units x rate), mix multinomial."""
+    rng = np.random.default_rng(seed)
+    units = np.round(rng.normal(mean_units, 0.05 * mean_units, m))
+    n = rng.poisson(units * rate)
+    counts = np.array([rng.multinomial(k, p) for k in n])
+    start = dt.date(2026, 1, 5)
+    ids = [f"{start + dt.timedelta(days=i // 3)}_{'ABC'[i % 3]}" for i in range(m)]
+    return counts, units, ids
+
+
+def test_in_control_window_is_stable_and_its_intervals_cover_the_truth(plant_config_text):
+    counts, units, ids = _window(seed=11)
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS)
+    assert study.verdict == "stable" and not study.flags and study.cap_reached is False
+    assert [r.flagged for r in study.rounds] == [()]
+    p = study.proportions
+    assert np.all((np.array(p.lower) <= P0) & (P0 <= np.array(p.upper)))
+    assert p.defects == counts.sum() and sum(p.proportions) == pytest.approx(1.0)
+    assert study.rate.lower <= 0.012 <= study.rate.upper and study.rate.shifts == 150
+    assert study.homogeneity.stable and 0.8 < study.homogeneity.dispersion < 1.2
+    assert study.change_point.stable and study.power.enough and study.power.more_shifts == 0
+    # the block pastes into the plant config as a valid baseline (shares sum to 1 within 1e-6)
+    block = baseline_block(study, name="l1-fitted", lines=["L1"], effective=dt.date(2026, 4, 6),
+                           window=(dt.date(2026, 1, 5), dt.date(2026, 2, 23)))
+    config = _config(plant_config_text + "\n" + block)
+    spec = next(b for b in config.baselines if b.name == "l1-fitted")
+    assert spec.lines == ("L1",) and spec.effective == dt.date(2026, 4, 6)
+    assert np.allclose([spec.proportions[c] for c in CATS], p.proportions, atol=1e-6)
+    assert spec.rate == pytest.approx(study.rate.rate, rel=1e-3)
+    assert "0 shift(s) excluded; stable" in spec.note
+
+
+def _with_odd_shift(seed: int = 12):
+    counts, units, ids = _window(seed=seed)
+    rng = np.random.default_rng(seed + 100)
+    odd = np.array([0.15, 0.45, 0.15, 0.10, 0.10, 0.05])  # dent doubles at scratch's cost
+    counts[40] = rng.multinomial(counts[40].sum(), odd)
+    return counts, units, ids
+
+
+def test_an_odd_shift_is_listed_with_its_reason_and_kept_unless_asked():
+    counts, units, ids = _with_odd_shift()
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS)
+    assert [(f.shift_id, f.kind, f.excluded) for f in study.flags] == [(ids[40], "mix", False)]
+    reason = study.flags[0].reason
+    assert "DNT up" in reason and "SCR down" in reason and "adjusted p" in reason
+    assert study.verdict == "not stable" and len(study.kept_shifts) == 150
+
+
+def test_exclude_outliers_removes_them_and_repeats_the_study():
+    counts, units, ids = _with_odd_shift()
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                      settings=FitSettings(exclude_outliers=True))
+    assert [f.shift_id for f in study.excluded] == [ids[40]]
+    assert [(r.round, r.shifts, r.flagged) for r in study.rounds] == [
+        (1, 150, (ids[40],)), (2, 149, ())]
+    assert ids[40] not in study.kept_shifts and study.verdict == "stable"
+    assert study.proportions.defects == counts.sum() - counts[40].sum()
+
+
+def test_a_shift_with_an_odd_defect_rate_is_flagged_as_rate():
+    counts, units, ids = _window(seed=13)
+    rng = np.random.default_rng(5)
+    counts[7] = rng.multinomial(int(counts[7].sum() * 2), P0)  # twice the defects, same mix
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS)
+    assert [(f.shift_id, f.kind) for f in study.flags] == [(ids[7], "rate")]
+    assert study.flags[0].effect_size == pytest.approx(2.0, rel=0.1)
+    assert f"defect rate {study.flags[0].effect_size:.2f} x the pooled window" in study.flags[0].reason
+
+
+def test_a_lasting_change_in_the_window_is_found_by_the_change_point_scan():
+    counts, units, ids = _window(seed=14, m=120)
+    rng = np.random.default_rng(6)
+    later = np.array([0.25, 0.25, 0.20, 0.12, 0.10, 0.08])  # w = 0.16 against P0, from shift 80
+    counts[80:] = [rng.multinomial(k, later) for k in counts[80:].sum(axis=1)]
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS)
+    cp = study.change_point
+    assert not cp.stable and cp.pvalue <= 0.002
+    assert abs(ids.index(cp.split_shift_id) - 80) <= 3
+    assert cp.after[0] < cp.before[0] and study.verdict == "not stable"
+
+
+def test_exclusion_repeats_in_rounds_and_stops_at_the_cap():
+    # 8 shifts far off and 8 a little off in the same direction: the far ones mask the others
+    counts, units, ids = _window(seed=16, m=60)
+    rng = np.random.default_rng(16)
+    mild = np.array([0.18, 0.40, 0.15, 0.12, 0.08, 0.07])
+    strong = np.array([0.10, 0.55, 0.15, 0.10, 0.06, 0.04])
+    counts[44:52] = [rng.multinomial(k, mild) for k in counts[44:52].sum(axis=1)]
+    counts[52:] = [rng.multinomial(k, strong) for k in counts[52:].sum(axis=1)]
+    capped = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                       settings=FitSettings(exclude_outliers=True, max_rounds=1))
+    assert capped.cap_reached and len(capped.rounds) == 1
+    still = [f for f in capped.flags if not f.excluded]
+    assert still and all(44 <= ids.index(f.shift_id) < 52 for f in still)
+    assert any("stopped after 1 exclusion rounds" in w for w in capped.warnings)
+    full = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                     settings=FitSettings(exclude_outliers=True))
+    assert not full.cap_reached and len(full.rounds) >= 3 and full.rounds[-1].flagged == ()
+    assert {ids[i] for i in range(52, 60)} <= {f.shift_id for f in full.excluded}
+    assert all(f.excluded for f in full.flags)
+
+
+def test_every_shift_excluded_is_an_error_naming_the_option():
+    counts = np.array([[50, 0, 0, 0, 0, 0], [0, 50, 0, 0, 0, 0]] * 3)
+    ids = [f"2026-01-0{i + 5}_A" for i in range(6)]
+    with pytest.raises(BaselineError, match=r"--exclude-outliers: every shift in the window stood out"):
+        fit_study(counts, None, shift_ids=ids, categories=CATS,
+                  settings=FitSettings(exclude_outliers=True))
+
+
+@pytest.mark.parametrize("counts,match", [
+    (np.zeros((0, 6)), r"--from/--to: the history window holds no shifts"),
+    (np.zeros((3, 6)), r"--from/--to: the 3 shift\(s\) in the window hold no defects"),
+])
+def test_empty_windows_are_errors_naming_the_window(counts, match):
+    with pytest.raises(BaselineError, match=match):
+        fit_study(counts, None, shift_ids=[f"2026-01-0{i + 5}_A" for i in range(len(counts))],
+                  categories=CATS)
+
+
+def test_bad_counts_name_the_argument():
+    counts = np.ones((2, 6))
+    counts[1, 2] = np.nan
+    with pytest.raises(InvalidArgumentError, match=r"counts: .*at \[1, 2\]"):
+        fit_study(counts, None, shift_ids=["a", "b"], categories=CATS)
+    with pytest.raises(InvalidArgumentError, match="shift_ids"):
+        fit_study(np.ones((2, 6)), None, shift_ids=["a"], categories=CATS)
+    with pytest.raises(InvalidArgumentError, match="--method"):
+        fit_study(np.ones((2, 6)), None, shift_ids=["a", "b"], categories=CATS,
+                  settings=FitSettings(method="wald"))
+
+
+def test_short_window_warns_about_false_alarms_and_counts_the_shifts_needed():
+    from qcfit.stats import chisq_power, sample_size_for_power
+
+    counts, units, ids = _window(seed=16, m=10, mean_units=1500)  # ~18 defects a shift
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS)
+    pw = study.power
+    needed = sample_size_for_power(0.10, 5, 0.01, 0.80)
+    assert pw.defects_needed == needed and pw.defects == counts.sum() < needed
+    assert pw.power == pytest.approx(chisq_power(0.10, 5, counts.sum(), 0.01))
+    assert pw.more_shifts == int(np.ceil((needed - counts.sum()) / (counts.sum() / 10)))
+    assert not pw.enough and study.verdict in ("stable, too few defects", "not stable")
+    arl = next(w for w in study.warnings if w.startswith("only 10 shift(s)"))
+    # the figures quoted in issue 6 (median in-control run 275 / 324 / 361 for a 370 chart)
+    assert [m for m, _ in ARL_FIGURES] == [10, 30, 100]
+    assert "370" in arl and "275 with 10, 324 with 30, 361 with 100" in arl and "issue 6" in arl
+    assert any(f"about {pw.more_shifts} more shift(s)" in w for w in study.warnings)
+
+
+def test_a_category_without_defects_gets_a_positive_share_in_the_block():
+    counts, units, ids = _window(seed=17, m=30, p=np.array([0.4, 0.3, 0.15, 0.1, 0.05, 0.0]))
+    study = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                      settings=FitSettings(method="goodman"))
+    assert study.proportions.counts[-1] == 0 and study.proportions.lower[-1] == 0.0
+    assert any("no defects in OTH" in w for w in study.warnings)
+    shares = block_proportions(study.proportions.counts, CATS)
+    assert shares["OTH"] > 0 and sum(round(v * 1e6) for v in shares.values()) == 10**6
+
+
+def test_goodman_option_and_json_form_and_determinism():
+    import json
+
+    from qcfit.stats import multinomial_intervals
+
+    counts, units, ids = _window(seed=18, m=40)
+    units[3] = np.nan  # unknown units: that shift counts in the mix, not in the rate
+    a = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                  settings=FitSettings(method="goodman"))
+    b = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                  settings=FitSettings(method="goodman"))
+    ref = multinomial_intervals(counts.sum(axis=0), 0.95, method="goodman")
+    assert np.allclose(np.c_[a.proportions.lower, a.proportions.upper], ref)
+    assert a.rate.shifts == 39 and any("39 of 40" in w for w in a.warnings)
+    text = json.dumps(a.to_dict(), allow_nan=False)
+    assert text == json.dumps(b.to_dict(), allow_nan=False)
+    data = json.loads(text)
+    assert data["proportions"]["by_category"]["SCR"]["lower"] == a.proportions.lower[0]
+    assert set(data) >= {"verdict", "excluded", "standing_out", "homogeneity", "rate", "power"}
