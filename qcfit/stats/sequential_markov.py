@@ -8,8 +8,9 @@ transition matrix, the vector of ARLs from every start state is ``(I - Q)^{-1} 1
 
 * Integer increments (Bernoulli CUSUM with integer weights, Poisson CUSUM of Lucas 1985
   with integer reference value ``k`` and limit ``h``): the chain is exact.
-* Real increments (the multinomial LLR): the increment is rounded to the lattice; with
-  ``step ~ h / 500`` the ARL is within about 1% (a finer step is a parameter).
+* Real increments (the multinomial LLR): each increment value's probability is split between
+  its two lattice neighbours (mean kept); with ``step ~ h / 600`` the ARL0 is within about 1-2%
+  of a 4x finer lattice (a finer step is a parameter).
 
 Also Siegmund's corrected-diffusion approximation (Siegmund 1985, "Sequential Analysis",
 from memory): ARL ~ (exp(-2 D b) + 2 D b - 1) / (2 D^2), D = mu/sigma, b = h/sigma + 1.166.
@@ -128,9 +129,15 @@ def llr_increment_pmf(p: np.ndarray, weights: np.ndarray, n_profile, step: float
         probs.append(np.full(draws, 1.0 / draws))
     v = np.concatenate(vals)
     q = np.concatenate(probs)
-    j = np.round(v / step).astype(np.int64)
+    # split each value's probability between its two lattice neighbours so the mean is kept
+    # (plain rounding aliases with the increment's own lattice and biased ARL0 by ~4%)
+    u = v / step
+    j = np.floor(u).astype(np.int64)
+    frac = u - j
     j_min = int(j.min())
-    pmf = np.bincount(j - j_min, weights=q)
+    size = int(j.max()) - j_min + 2
+    pmf = np.bincount(j - j_min, weights=q * (1 - frac), minlength=size)
+    pmf += np.bincount(j - j_min + 1, weights=q * frac, minlength=size)
     return LatticePmf(pmf / pmf.sum(), j_min, float(step), method)
 
 
@@ -166,7 +173,7 @@ class MarkovCalibration:
 
 
 def calibrate_llr_cusum(p0: np.ndarray, weights: np.ndarray, n_profile, arl0: float, *,
-                        rng: np.random.Generator | None = None, points: int = 400,
+                        rng: np.random.Generator | None = None, points: int = 600,
                         ) -> MarkovCalibration:
     """Limit of one LLR CUSUM for in-control ARL ``arl0`` by the Brook-Evans chain.
 
