@@ -484,6 +484,10 @@ def _between(table: CountTable, limits: Any, seed: int) -> Finding:
 
 def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
     counts = np.ascontiguousarray(table.counts, dtype=np.int64)
+    if (counts.sum(axis=0) > 0).sum() < 2 or (counts.sum(axis=1) > 0).sum() < 2:
+        why = "fewer than 2 lines or 2 categories with defects this shift"
+        return [Finding(kind=KIND_VS_REST, line=ln, verdict=NOT_TESTED, reason=why,
+                        n=int(counts[i].sum())) for i, ln in enumerate(table.lines)]
     try:
         res = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="auto", seed=seed,
                                           **_mc_options(limits))

@@ -7,6 +7,7 @@ import datetime as dt
 import io
 import json
 import math
+import textwrap
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -74,28 +75,30 @@ def _cut(text: str, width: int) -> str:
     return text if len(text) <= width else text[: width - 1] + "~"
 
 
-COLUMNS = (("ID", 5, ">"), ("Line", 6, "<"), ("Kind", 5, "<"), ("Shift", 12, "<"),
-           ("Sev", 5, "<"), ("State", 5, "<"), ("Age", 4, ">"), ("adj p", 6, ">"),
-           ("Effect", 7, ">"))
+COLUMNS = (("ID", 6, ">"), ("Line", 8, "<"), ("Kind", 5, "<"), ("Shift", 14, "<"),
+           ("Severity", 8, "<"), ("State", 6, "<"), ("Age", 4, ">"), ("Shifts", 6, ">"),
+           ("p", 6, ">"), ("adj. p", 6, ">"), ("Effect", 7, ">"))
+INDENT = 8  # the words under each row start here
 
 
 def table_lines(alarms: Sequence[Any], now: dt.datetime, width: int = WIDTH) -> list[str]:
-    """The alarm table, every line at most ``width`` characters."""
-    fixed = sum(w for _, w, _ in COLUMNS) + len(COLUMNS)
-    what = max(10, width - fixed)
-
+    """The alarm table: one row of figures per alarm, then what changed in words, indented
+    and wrapped; every line at most ``width`` characters."""
     def row(cells: Sequence[str]) -> str:
-        parts = [f"{_cut(c, w):{a}{w}}" for c, (_, w, a) in zip(cells, COLUMNS, strict=False)]
-        return (" ".join(parts) + " " + _cut(cells[-1], what)).rstrip()[:width]
+        parts = [f"{_cut(c, w):{a}{w}}" for c, (_, w, a) in zip(cells, COLUMNS, strict=True)]
+        return " ".join(parts).rstrip()[:width]
 
-    out = [row([h for h, _, _ in COLUMNS] + ["What changed"])]
+    out = [row([h for h, _, _ in COLUMNS])]
     for a in alarms:
         out.append(row([
             str(a.id), a.line or "(all)", KIND_SHORT.get(a.kind, a.kind), a.shift_id or "-",
             a.severity, STATE_SHORT.get(a.state, a.state), age(a.opened, now),
-            fmt_p(a.adjusted_pvalue), fmt_effect(a.kind, a.effect_size),
-            a.summary + (f" [{a.shift_count} shifts]" if a.shift_count > 1 else ""),
+            str(a.shift_count), fmt_p(a.pvalue), fmt_p(a.adjusted_pvalue),
+            fmt_effect(a.kind, a.effect_size),
         ]))
+        for clause in a.summary.split("; "):
+            out += textwrap.wrap(clause, width=width, initial_indent=" " * INDENT,
+                                 subsequent_indent=" " * (INDENT + 2))
     return out
 
 
