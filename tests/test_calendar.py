@@ -357,3 +357,20 @@ def test_wall_time_to_instant_never_runs_backwards(zone, window, minutes):
     walls = sorted(start + dt.timedelta(minutes=m) for m in minutes)
     instants = [calendar.wall_to_instant(w.date(), w.time()) for w in walls]
     assert instants == sorted(instants)
+
+
+def test_zone_changing_at_midnight_moves_the_missing_midnight_forward():
+    # Cuba changes clocks at midnight (from memory, IANA tz database file "northamerica",
+    # Rule Cuba: second Sunday of March 00:00 CST -> 01:00 CDT; first Sunday of November
+    # 01:00 CDT -> 00:00 CST). In 2025 those are 9 March and 2 November.
+    # Two 12-hour shifts meeting at midnight: the missing 00:00 of 9 March becomes 01:00 CDT.
+    shifts = (ShiftSpec("D", T(0), T(12)), ShiftSpec("N", T(12), T(0)))
+    calendar = cal("America/Havana", shifts)
+    night = calendar.instance(day("2025-03-08"), "N")
+    first_day = calendar.instance(day("2025-03-09"), "D")
+    assert night.end == first_day.start == utc(2025, 3, 9, 5)
+    assert (night.hours, first_day.hours) == (12.0, 11.0)
+    assert first_day.start.isoformat() == "2025-03-09T01:00:00-04:00"
+    # autumn: midnight comes twice; the boundary is the first, the day shift gets 13 h
+    autumn = calendar.instance(day("2025-11-02"), "D")
+    assert autumn.start == utc(2025, 11, 2, 4) and autumn.hours == 13.0
