@@ -823,7 +823,7 @@ def _parse_codes(col: _Collector, mapping: Mapping, section: str, minimum: int) 
         elif code == ALL_LINES:
             col.add(key, '"*" is reserved (it means every line in a baseline)')
         elif not isinstance(name, str):
-            col.add(key, f'the display name must be a string, e.g. {code} = "..." , not {_show(name)}')
+            col.add(key, f'the display name must be a string, e.g. {code} = "...", not {_show(name)}')
         else:
             good[code] = name.strip() or code
     return FrozenMap(good)
