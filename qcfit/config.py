@@ -105,7 +105,8 @@ are strings ``"HH:MM"`` or ``"HH:MM:SS"`` (a bare TOML time needs seconds: ``06:
 ``[sequential]`` (charts accumulating evidence across shifts)
     ``enabled``  boolean, default true.
     ``target_arl``  number > 1, default 370. In-control average run length in shifts.
-    ``ewma_lambda``  number in (0, 1], default 0.1. EWMA smoothing weight.
+    ``ewma_lambda``  number in [0, 1], default 0.2. Smoothing weight of the multivariate EWMA
+        (smaller remembers longer); 0 turns the EWMA off, leaving the CUSUMs.
     ``concerns``  list of ``{category = "CODE", factor = r}``, default ``[]``: shifts of concern
         ("category CODE up by the factor r"; r > 0 and r != 1, r < 1 means down).
 
@@ -210,7 +211,7 @@ Complete example (every key; the values shown are the defaults unless marked)::
     [sequential]
     enabled = true
     target_arl = 370
-    ewma_lambda = 0.1
+    ewma_lambda = 0.2
     concerns = [{ category = "FL", factor = 2.0 }]
 
     [report]
@@ -415,7 +416,7 @@ class BaselineSpec:
 
 DEFAULT_SEQ_ENABLED = True
 DEFAULT_TARGET_ARL = 370.0
-DEFAULT_EWMA_LAMBDA = 0.1
+DEFAULT_EWMA_LAMBDA = 0.2  # same as qcfit.stats.sequential.DEFAULT_EWMA_LAMBDA
 
 
 @dataclass(frozen=True, slots=True)
@@ -1140,7 +1141,7 @@ def _parse_sequential(col: _Collector, mapping: Mapping, categories: Mapping[str
                            "sequential", {
         "enabled": (_boolean, DEFAULT_SEQ_ENABLED),
         "target_arl": (_real(1, lo_open=True), DEFAULT_TARGET_ARL),
-        "ewma_lambda": (_real(0, 1, lo_open=True), DEFAULT_EWMA_LAMBDA),
+        "ewma_lambda": (_real(0, 1), DEFAULT_EWMA_LAMBDA),
     })
     concerns = _parse_concerns(col, table.get("concerns", []), categories)
     return SequentialSettings(concerns=concerns, **values)

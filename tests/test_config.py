@@ -614,9 +614,9 @@ def test_sequential_concerns(plant_config_text):
     seq = parse(ok).sequential
     assert not seq.enabled and seq.target_arl == 500.0
     assert [(c.category, c.factor) for c in seq.concerns] == [("FL", 2.0), ("SCR", 0.5)]
-    bad = plant_config_text + '\n[sequential]\newma_lambda = 0\nconcerns = [{category = "XX", factor = 1}, {factor = -1}, 3]\n'
+    bad = plant_config_text + '\n[sequential]\newma_lambda = -0.1\nconcerns = [{category = "XX", factor = 1}, {factor = -1}, 3]\n'
     found = {p.key: p.reason for p in problems_of(bad)}
-    assert "must be > 0" in found["sequential.ewma_lambda"]
+    assert "must be >= 0" in found["sequential.ewma_lambda"]
     assert "not a category" in found["sequential.concerns[1].category"]
     assert "1 means no change" in found["sequential.concerns[1].factor"]
     assert found["sequential.concerns[2].category"] == "missing"
@@ -860,3 +860,12 @@ def test_the_shared_fixture_in_a_fresh_pytest(tmp_path):
                          capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stdout + out.stderr
     assert "1 passed" in out.stdout
+
+
+def test_sequential_defaults_agree_with_the_charts():
+    # The config's defaults must be the ones the ARL study and the chart code assume.
+    from qcfit.config import SequentialSettings
+    from qcfit.stats import sequential
+
+    assert SequentialSettings().ewma_lambda == sequential.DEFAULT_EWMA_LAMBDA
+    assert SequentialSettings().target_arl == sequential.DEFAULT_ARL0
