@@ -68,12 +68,15 @@ def _sison_glaz(x: np.ndarray, alpha: float) -> np.ndarray:
     if x.size < 7:
         log.warning("Sison-Glaz intervals with %d < 7 categories may be inaccurate", x.size)
     c = 1
-    nu_c, nu_next = _nu(c, x), _nu(c + 1, x)
-    while not nu_c <= 1 - alpha < nu_next:
-        if c > n:
-            raise InvalidArgumentError("counts", "no Sison-Glaz solution for these counts")
-        c += 1
-        nu_c, nu_next = nu_next, _nu(c + 1, x)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        nu_c, nu_next = _nu(c, x), _nu(c + 1, x)
+        while not nu_c <= 1 - alpha < nu_next:
+            if c > n:
+                log.warning("no Sison-Glaz solution for counts %s: Goodman intervals instead",
+                            x.astype(int).tolist())
+                return _goodman(x, alpha)
+            c += 1
+            nu_c, nu_next = nu_next, _nu(c + 1, x)
     gamma = (1 - alpha - nu_c) / (nu_next - nu_c)
     p = x / n
     return np.column_stack([np.maximum(p - c / n, 0.0), np.minimum(p + (c + 2 * gamma) / n, 1.0)])

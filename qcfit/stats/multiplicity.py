@@ -43,7 +43,7 @@ def adjust_pvalues(p: object, method: str = "bh") -> np.ndarray:
     vals = flat[ok]
     bad = (vals < 0) | (vals > 1)
     if bad.any():
-        raise InvalidArgumentError("p", f"p-value {vals[bad][0]!r} is outside [0, 1]")
+        raise InvalidArgumentError("p", f"p-value {float(vals[bad][0]):g} is outside [0, 1]")
     out = np.full(flat.shape, np.nan)
     if vals.size:
         order = np.argsort(vals, kind="stable")
