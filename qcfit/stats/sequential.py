@@ -562,8 +562,7 @@ def _move(j: int, p0j: float, est: float, contribution: float) -> CategoryMove:
                         float(contribution))
 
 
-def _cusum_moves(p0, w, cnt, cats) -> tuple[tuple[CategoryMove, ...], int]:
-    n_since = float(cnt[-1]) if len(cats) < len(p0) else float(cnt.sum())
+def _cusum_moves(p0, w, cnt, cats, n_since: float) -> tuple[tuple[CategoryMove, ...], int]:
     moves = []
     for pos, j in enumerate(cats):
         c = float(cnt[pos])
@@ -588,7 +587,8 @@ def signal_reports(step: SequentialStep, state: SequentialState, design: Sequent
                                     t - start, -1, _pick(moves)))
         for c in np.flatnonzero(step.concern_signal[i]):
             drivers, nd = _cusum_moves(p0[i], design.concern_weights[i, c],
-                                       state.cusum_counts[i, c], list(range(design.k)))
+                                       state.cusum_counts[i, c], list(range(design.k)),
+                                       float(state.cusum_counts[i, c].sum()))
             start = int(step.concern_start[i, c])
             out.append(SignalReport(int(i), t, "concern", design.concern_names[c],
                                     float(step.concern_stat[i, c]), float(limits.concerns[i, c]),
@@ -597,7 +597,8 @@ def signal_reports(step: SequentialStep, state: SequentialState, design: Sequent
             d = int(step.bank_top[i])
             a, b = (int(v) for v in design.bank_pairs[d])
             drivers, nd = _cusum_moves(p0[i], design.bank_weights[i, d],
-                                       state.bank_counts[i, d], [a, b])
+                                       state.bank_counts[i, d], [a, b],
+                                       float(state.bank_counts[i, d, 2]))
             start = int(step.bank_start[i])
             out.append(SignalReport(int(i), t, "bank", f"cat{a}->cat{b}",
                                     float(step.bank_stat[i]), float(limits.bank[i]), start,

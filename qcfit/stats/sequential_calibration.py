@@ -23,6 +23,8 @@ not depend on which other lines are calibrated with it.
 
 from __future__ import annotations
 
+import hashlib
+import json
 from dataclasses import dataclass
 from typing import Any
 
@@ -311,6 +313,25 @@ def calibrate(design: SequentialDesign, n_profile: Any, *, arl0: float = DEFAULT
         method_reason="renewal ratio estimator on running maxima; equal split of the "
                       "false-alarm budget between MEWMA and bank",
     )
+
+
+def calibration_key(design: SequentialDesign, line: int, n_profile: Any, *,
+                    arl0: float = DEFAULT_ARL0, seed: int = 0, paths: int = DEFAULT_PATHS,
+                    horizon: int | None = None) -> str:
+    """Stable hex key of everything a line's limits depend on (for a calibration cache).
+
+    Covers the line's baseline and chart settings, its n profile (as a sorted multiset), the
+    target ARL0 and the simulation settings; limits are recalibrated when the key changes.
+    """
+    prof = sorted(int(v) for v in np.asarray(n_profile, dtype=np.int64).reshape(-1))
+    body = {
+        "v": 1, "p0": design.p0[line].tolist(), "lambda": design.ewma_lambda,
+        "concerns": design.concern_p1[line].tolist(), "bank_w": design.bank_w,
+        "pairs": design.bank_pairs.tolist(), "n": prof, "arl0": float(arl0), "seed": int(seed),
+        "paths": int(paths), "horizon": int(horizon or round(arl0)),
+    }
+    text = json.dumps(body, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()
 
 
 def conservative_limits(design: SequentialDesign, arl0: float = DEFAULT_ARL0) -> SequentialLimits:

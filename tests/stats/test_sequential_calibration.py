@@ -17,6 +17,7 @@ from qcfit.stats.sequential import (
 from qcfit.stats.sequential_calibration import (
     ArlCurve,
     calibrate,
+    calibration_key,
     conservative_limits,
     ratio_arl,
     simulate_traces,
@@ -190,3 +191,13 @@ def test_conservative_limits_and_bad_arguments():
         calibrate(d, [200], arl0=0.5)
     with pytest.raises(InvalidArgumentError, match="n_profile"):
         calibrate(d, [0, 0])
+
+
+def test_calibration_key_changes_with_what_the_limits_depend_on():
+    d = make_design(np.array([P0, P0[::-1]]))
+    k0 = calibration_key(d, 0, [200, 150])
+    assert k0 == calibration_key(d, 0, [150, 200])  # a profile is a multiset
+    assert k0 != calibration_key(d, 1, [200, 150])  # other baseline
+    assert k0 != calibration_key(d, 0, [200, 150], arl0=500.0)
+    assert k0 != calibration_key(make_design(np.array([P0, P0]), ewma_lambda=0.1), 0,
+                                 [200, 150])
