@@ -26,6 +26,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "qcfit.cli.data",
     "qcfit.cli.evaluate",
     "qcfit.cli.alarms",
+    "qcfit.cli.service",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"
