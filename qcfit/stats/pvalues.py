@@ -21,9 +21,10 @@ extending a sample keeps its first draws.
 
 ``auto`` (``resolve``): asymptotic only when Cochran's rule holds and the asymptotic p is not
 within a factor ``refine_factor`` of a decision level; otherwise exact when the enumeration is
-small, else Monte Carlo. Monte Carlo runs ``draws`` draws, then keeps doubling while its p is
-within 3 standard errors of a decision level alpha, up to B = (1 - alpha) / (alpha * rel_se^2)
-draws (relative standard error ``rel_se`` at alpha). Because one fixed seed gives the same
+small, else Monte Carlo. Monte Carlo adds chunks until its standard error is at most
+0.5/sqrt(draws) (0.005 for 10,000 draws; at most ``draws`` draws), then keeps doubling while
+its p is within 3 standard errors of a decision level alpha, up to
+B = (1 - alpha) / (alpha * rel_se^2) draws (relative standard error ``rel_se`` at alpha). Because one fixed seed gives the same
 reference sample to every shift with the same null model, it is this per-sample precision,
 not only the average over seeds, that keeps the realised false-alarm rate near alpha.
 """
@@ -42,10 +43,10 @@ from qcfit.errors import InvalidArgumentError
 DEFAULT_DRAWS = 10_000
 DEFAULT_LEVELS: tuple[float, ...] = (0.01, 1 / 370, 0.05)
 EXACT_LIMIT = 200_000
-CHUNK = 5_000
+CHUNK = 2_500
 REFINE_FACTOR = 3.0
-REFINE_REL_SE = 0.03
-MAX_DRAWS = 500_000
+REFINE_REL_SE = 0.02
+MAX_DRAWS = 1_000_000
 TIE_RTOL = 1e-9
 PVALUE_METHODS = ("auto", "asymptotic", "monte-carlo", "exact")
 
@@ -190,11 +191,13 @@ def _cap(alpha: float, rel_se: float) -> int:
     return int(min(MAX_DRAWS, np.ceil((1 - alpha) / (alpha * rel_se**2))))
 
 
-def _next_draws(p: np.ndarray, b: np.ndarray, levels: tuple[float, ...], rel_se: float
-                ) -> np.ndarray:
-    """Draws wanted next: double while p is within 3 standard errors of a level."""
+def _next_draws(p: np.ndarray, b: np.ndarray, levels: tuple[float, ...], rel_se: float,
+                draws: int) -> np.ndarray:
+    """Draws wanted next: one more chunk while the standard error exceeds 0.5/sqrt(draws)
+    (what ``draws`` draws give at p = 1/2), and doubling while p is within 3 standard errors
+    of a decision level."""
     se = np.sqrt(np.maximum(p * (1 - p), 1.0 / (b + 1)) / b)
-    want = b.copy()
+    want = np.where((se > 0.5 / np.sqrt(draws)) & (b < draws), np.minimum(b + CHUNK, draws), b)
     for a in levels:
         cap = _cap(a, rel_se)
         close = (np.abs(p - a) < 3 * se) & (b < cap)
@@ -205,7 +208,7 @@ def _next_draws(p: np.ndarray, b: np.ndarray, levels: tuple[float, ...], rel_se:
 def _monte_carlo(t, lines, model_of, models, root, draws, levels, rel_se, adaptive):
     """Monte Carlo p for ``lines`` (indices); returns (p, se, B) arrays for those lines."""
     samples: dict[int, ReferenceSample] = {}
-    b = np.full(len(lines), draws, dtype=np.int64)
+    b = np.full(len(lines), min(draws, CHUNK) if adaptive else draws, dtype=np.int64)
     p = np.empty(len(lines))
     pending = np.ones(len(lines), dtype=bool)
     while pending.any():
@@ -218,7 +221,7 @@ def _monte_carlo(t, lines, model_of, models, root, draws, levels, rel_se, adapti
                 p[s] = (1 + ref.count_ge(t[lines[s]], int(size))) / (1 + size)
         if not adaptive:
             break
-        nxt = np.where(pending, _next_draws(p, b, levels, rel_se), b)
+        nxt = np.where(pending, _next_draws(p, b, levels, rel_se, draws), b)
         pending = nxt > b
         b = nxt
     se = np.sqrt(p * (1 - p) / b)
