@@ -1,13 +1,15 @@
 """Reference figures for SCENARIO.md ("What qcfit should find"), independent of qcfit.
 
-Run ``python sample_lines/reference_check.py`` (numpy, scipy, pandas; ~10 s, seeded). It reads
+Run ``python sample_lines/reference_check.py [--lambda 0.2]`` (numpy, scipy, pandas; ~15 s,
+seeded). It reads
 the generated data and prints, for the drift line and the healthy lines:
 
 * the per-shift Pearson X^2 goodness of fit against the baseline (scipy.stats.chisquare), at
   p < 1/370 (the false-alarm rate of an in-control ARL of 370 shifts) and at p < 0.01;
 * the first signal of two simple sequential charts, each with its limit set by simulation to an
   in-control ARL of 370 shifts at Poisson(200) defects a shift:
-  - a multivariate EWMA of the standardised count vector, lambda 0.1, with the asymptotic
+  - a multivariate EWMA of the standardised count vector (lambda 0.2 by default, as in
+    qcfit's [sequential] default), with the asymptotic
     covariance lambda/(2 - lambda) Sigma (Lowry, Woodall, Champ & Rigdon 1992, Technometrics
     34(1), eq. 2-3, applied to the multinomial residual vector);
   - a multinomial log-likelihood-ratio CUSUM for "sink mark share x1.5, others scaled"
@@ -21,6 +23,7 @@ own charts can be compared against them. They are not qcfit's method.
 
 from __future__ import annotations
 
+import argparse
 import importlib.util
 import sys
 from pathlib import Path
@@ -32,7 +35,7 @@ from scipy import stats
 HERE = Path(__file__).resolve().parent
 SEED = 20261019
 ARL0 = 370.0
-LAMBDA = 0.1
+LAMBDA = 0.2  # set from --lambda in main()
 CUSUM_FACTOR = 1.5
 N_PER_SHIFT = 200
 
@@ -107,13 +110,18 @@ def observed_counts() -> tuple[list[str], dict[str, np.ndarray]]:
     return ids, lines
 
 
-def main() -> int:
+def main(argv: list[str] | None = None) -> int:
+    global LAMBDA
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--lambda", dest="lam", type=float, default=LAMBDA,
+                        help="MEWMA smoothing weight (default 0.2)")
+    LAMBDA = parser.parse_args(argv).lam
     rng = np.random.default_rng(SEED)
     limits = {
-        "MEWMA": calibrate(mewma, rng, np.linspace(14, 24, 21)),
+        "MEWMA": calibrate(mewma, rng, np.linspace(14, 26, 25)),
         "CUSUM": calibrate(cusum, rng, np.linspace(3, 7, 17)),
     }
-    print("limits for ARL0 370:", {k: round(v, 2) for k, v in limits.items()})
+    print(f"MEWMA lambda {LAMBDA}; limits for ARL0 370:", {k: round(v, 2) for k, v in limits.items()})
     ids, lines = observed_counts()
     start = ids.index(gen.DRIFT_FIRST)
     for line in ("IM1", "IM2", "IM3", "IM4"):

@@ -173,6 +173,20 @@ def test_config_describes_the_generated_plant(config: Config) -> None:
     assert config.warnings == ()
 
 
+def test_the_per_shift_effect_floor_is_one_a_shift_can_see(config: Config,
+                                                          truth: pd.DataFrame) -> None:
+    # plant.toml raises min_effect_w to 0.35 so that a typical press shift has the configured
+    # power against it (otherwise no shift could be called in control). Power of the Pearson
+    # X^2 test: P(noncentral chi2(df, n w^2) > chi2_{1-alpha}(df)) (Cohen 1988, Statistical
+    # Power Analysis, ch. 7); scipy.stats.ncx2 as reference.
+    t = config.thresholds
+    df = len(config.categories) - 1
+    n = truth[truth["line"] != "IM5"]["defects"].median()
+    critical = stats.chi2.isf(t.alarm_level, df)
+    assert stats.ncx2.sf(critical, df, n * t.min_effect_w**2) >= t.power
+    assert stats.ncx2.sf(critical, df, n * 0.10**2) < 0.1  # the 0.10 default: hopeless per shift
+
+
 def _uncommented(text: str) -> str:
     """The config with every commented-out setting or table header switched on."""
     out = []
