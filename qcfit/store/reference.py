@@ -19,7 +19,7 @@ import datetime as dt
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Protocol
+from typing import Any, Protocol
 
 from sqlalchemy import Connection, insert, select, text, update
 
@@ -85,45 +85,50 @@ def sync_reference(
     """Make the line and category tables match the config (see the module docstring)."""
     _require_codes("lines", lines)
     _require_codes("categories", categories)
-    stored_lines = {r.code: (r.name, bool(r.active)) for r in conn.execute(select(line))}
-    stored_cats = {r.code: r.name for r in conn.execute(select(category))}
+    added, renamed, reactivated, deactivated = _sync_lines(conn, lines)
+    cat_added, cat_renamed, cat_extra = _sync_categories(conn, categories)
+    return ReferenceSync(
+        lines_added=added,
+        lines_renamed=renamed,
+        lines_reactivated=reactivated,
+        lines_deactivated=deactivated,
+        categories_added=cat_added,
+        categories_renamed=cat_renamed,
+        categories_not_in_config=cat_extra,
+    )
 
-    added = [c for c in lines if c not in stored_lines]
-    renamed = [
-        (c, stored_lines[c][0], n)
-        for c, n in lines.items()
-        if c in stored_lines and stored_lines[c][0] != n
-    ]
-    reactivated = [c for c in lines if c in stored_lines and not stored_lines[c][1]]
-    deactivated = sorted(c for c, (_, act) in stored_lines.items() if act and c not in lines)
+
+def _sync_lines(conn: Connection, lines: Mapping[str, str]) -> tuple[Any, Any, Any, Any]:
+    stored = {r.code: (r.name, bool(r.active)) for r in conn.execute(select(line))}
+    added = tuple(c for c in lines if c not in stored)
+    renamed = _renamed(lines, {c: name for c, (name, _) in stored.items()})
+    reactivated = tuple(c for c in lines if c in stored and not stored[c][1])
+    deactivated = tuple(sorted(c for c, (_, on) in stored.items() if on and c not in lines))
     if added:
         conn.execute(insert(line), [{"code": c, "name": lines[c], "active": True} for c in added])
     for code, _, new in renamed:
         conn.execute(update(line).where(line.c.code == code).values(name=new))
-    if reactivated:
-        conn.execute(update(line).where(line.c.code.in_(reactivated)).values(active=True))
-    if deactivated:
-        conn.execute(update(line).where(line.c.code.in_(deactivated)).values(active=False))
+    for codes, active in ((reactivated, True), (deactivated, False)):
+        if codes:
+            conn.execute(update(line).where(line.c.code.in_(codes)).values(active=active))
+    return added, renamed, reactivated, deactivated
 
-    cat_added = [c for c in categories if c not in stored_cats]
-    cat_renamed = [
-        (c, stored_cats[c], n)
-        for c, n in categories.items()
-        if c in stored_cats and stored_cats[c] != n
-    ]
-    if cat_added:
-        conn.execute(insert(category), [{"code": c, "name": categories[c]} for c in cat_added])
-    for code, _, new in cat_renamed:
+
+def _sync_categories(conn: Connection, categories: Mapping[str, str]) -> tuple[Any, Any, Any]:
+    stored = {r.code: r.name for r in conn.execute(select(category))}
+    added = tuple(c for c in categories if c not in stored)
+    renamed = _renamed(categories, stored)
+    if added:
+        conn.execute(insert(category), [{"code": c, "name": categories[c]} for c in added])
+    for code, _, new in renamed:
         conn.execute(update(category).where(category.c.code == code).values(name=new))
-    return ReferenceSync(
-        lines_added=tuple(added),
-        lines_renamed=tuple(renamed),
-        lines_reactivated=tuple(reactivated),
-        lines_deactivated=tuple(deactivated),
-        categories_added=tuple(cat_added),
-        categories_renamed=tuple(cat_renamed),
-        categories_not_in_config=tuple(sorted(set(stored_cats) - set(categories))),
-    )
+    return added, renamed, tuple(sorted(set(stored) - set(categories)))
+
+
+def _renamed(
+    wanted: Mapping[str, str], stored: Mapping[str, str]
+) -> tuple[tuple[str, str, str], ...]:
+    return tuple((c, stored[c], n) for c, n in wanted.items() if c in stored and stored[c] != n)
 
 
 def read_lines(conn: Connection, *, active_only: bool = True) -> dict[str, str]:

@@ -32,6 +32,7 @@ from qcfit.store.migrate import (
     current_revision,
     head_revision,
     migrations_dir,
+    new_revision,
     upgrade_store,
 )
 
@@ -417,3 +418,21 @@ def test_tables_without_a_revision_are_refused(store_engine: sa.Engine) -> None:
         SchemaError, match=r"has qcfit tables but no schema revision \(category, line\)"
     ):
         upgrade_store(store_engine)
+
+
+def test_new_revision_writes_the_next_script(tmp_path: Path) -> None:
+    folder = tmp_path / "migrations"
+    shutil.copytree(migrations_dir(), folder, ignore=shutil.ignore_patterns("__pycache__"))
+    path = new_revision(
+        "nothing yet", url=f"sqlite:///{tmp_path / 'scratch.sqlite'}", migrations=folder
+    )
+    assert path.parent == folder / "versions"
+    body = path.read_text(encoding="utf-8")
+    assert "revision: str = '0002'" in body
+    assert "down_revision: str | Sequence[str] | None = '0001'" in body
+    # schema.py and the migrations agree, so the new revision has nothing to do
+    upgrade = body.split("def upgrade() -> None:")[1].split("def downgrade")[0]
+    assert "op." not in upgrade and "pass" in upgrade
+    engine = make_engine(f"sqlite:///{tmp_path / 'store.sqlite'}")
+    assert upgrade_store(engine, migrations=folder).to_revision == "0002"
+    engine.dispose()
