@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from functools import lru_cache
+from functools import cache
 from math import comb
 
 import numpy as np
@@ -14,31 +14,39 @@ def n_compositions(total: int, k: int) -> int:
 
 
 def n_bounded(total: int, caps: tuple[int, ...]) -> int:
-    """Number of vectors x with 0 <= x_j <= caps[j] and sum x = total (polynomial DP)."""
-    ways = np.zeros(total + 1, dtype=object)
-    ways[0] = 1
-    for c in caps:
-        new = np.zeros_like(ways)
-        for a in range(min(c, total) + 1):
-            new[a:] += ways[: total + 1 - a]
-        ways = new
-    return int(ways[total])
+    """Number of vectors x with 0 <= x_j <= caps[j] and sum x = total (polynomial DP in
+    floating point: exact while below 2**53, which is all the exact-test limit needs)."""
+    ways = np.zeros(total + 1)
+    ways[0] = 1.0
+    for c in caps:  # new[t] = sum_{a=0..c} ways[t - a], by a running sum
+        csum = np.concatenate([[0.0], np.cumsum(ways)])
+        lo = np.maximum(np.arange(total + 1) - min(c, total), 0)
+        ways = csum[np.arange(total + 1) + 1] - csum[lo]
+    return int(min(round(ways[total]), 2**62))
 
 
-@lru_cache(maxsize=64)
 def bounded_compositions(total: int, caps: tuple[int, ...]) -> np.ndarray:
-    """All vectors x (rows) with 0 <= x_j <= caps[j] and sum x = total; read-only int64."""
-    if len(caps) == 1:
-        out = np.array([[total]] if total <= caps[0] else np.empty((0, 1)), dtype=np.int64)
-    else:
-        room = sum(caps[1:])
+    """All vectors x (rows) with 0 <= x_j <= caps[j] and sum x = total, as int64.
+
+    Built from the last category forwards, memoized within this call only (no module-level
+    cache holding large arrays).
+    """
+
+    @cache
+    def build(t: int, start: int) -> np.ndarray:
+        rest_caps = caps[start:]
+        if len(rest_caps) == 1:
+            return np.array([[t]] if t <= rest_caps[0] else np.empty((0, 1)), dtype=np.int64)
+        room = sum(rest_caps[1:])
         parts = []
-        for a in range(max(0, total - room), min(caps[0], total) + 1):
-            rest = bounded_compositions(total - a, caps[1:])
+        for a in range(max(0, t - room), min(rest_caps[0], t) + 1):
+            rest = build(t - a, start + 1)
             parts.append(np.column_stack([np.full(len(rest), a, dtype=np.int64), rest]))
-        out = np.concatenate(parts) if parts else np.empty((0, len(caps)), dtype=np.int64)
-    out.setflags(write=False)
-    return out
+        if not parts:
+            return np.empty((0, len(rest_caps)), dtype=np.int64)
+        return np.concatenate(parts)
+
+    return build(total, 0)
 
 
 def compositions(total: int, k: int) -> np.ndarray:
