@@ -449,21 +449,23 @@ class Service:
                              backups=config.log.backups)
 
     def _add_jobs(self, config: Config, *, start: bool) -> None:
+        """Jobs from ``config`` (memory job store; replaced in place on reload)."""
         sched = self.scheduler
         assert sched is not None
-        sched.remove_all_jobs()
         cal = ShiftCalendar.from_config(config)
         grace = dt.timedelta(minutes=config.schedule.grace_minutes)
         tz = config.timezone
-        if start:
+        if start:  # no trigger: runs once, now
             sched.add_job(self._job, id="start", name="start catch-up", args=("start",))
-        sched.add_job(self._job, ShiftEndTrigger(cal, grace), id="wake",
-                      name="shift end + grace", args=("wake",))
-        sched.add_job(self._job, IntervalTrigger(minutes=config.schedule.tick_minutes,
-                                                 timezone=tz), id="tick", name="tick",
-                      args=("tick",))
-        sched.add_job(self.beat, IntervalTrigger(seconds=self.options.beat_s, timezone=tz),
-                      id="beat", name="heartbeat")
+        jobs = [
+            ("wake", "shift end + grace", self._job, ("wake",), ShiftEndTrigger(cal, grace)),
+            ("tick", "tick", self._job, ("tick",),
+             IntervalTrigger(minutes=config.schedule.tick_minutes, timezone=tz)),
+            ("beat", "heartbeat", self.beat, (),
+             IntervalTrigger(seconds=self.options.beat_s, timezone=tz)),
+        ]
+        for job_id, name, func, args, trigger in jobs:
+            sched.add_job(func, trigger, id=job_id, name=name, args=args, replace_existing=True)
 
     def _job(self, why: str) -> None:
         if self.stop.is_set():
@@ -578,6 +580,7 @@ class Service:
                 self.lock.release()
         self.engine.dispose()
         log.info("qcfit service stopped")
+        servicelog.reset()
 
 
 # ---------------------------------------------------------------------------------------

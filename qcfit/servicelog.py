@@ -4,8 +4,8 @@
   puts in the journal) and, when ``[log] file`` is set, a rotating file (``max_bytes``,
   ``backups``). Only the service writes this file; the CLI logs to stderr only, because
   Python's logging does not support several processes writing one file.
-  The ``apscheduler`` loggers are set to INFO explicitly (job errors come at ERROR, missed
-  runs at WARNING).
+  The ``apscheduler`` loggers are set explicitly: ``apscheduler.scheduler`` at INFO,
+  ``apscheduler.executors.default`` at WARNING (missed runs; job tracebacks at ERROR).
 * :func:`log_alarm` writes one alarm as one line, after the transaction that wrote it has
   committed, carrying the alarm id: the store is the source of truth and the file can be
   regenerated from it. Logger ``qcfit.alarms``; the line looks like
@@ -54,9 +54,11 @@ def configure(level: str = "INFO", file: Path | None = None, *, max_bytes: int =
     """
     root = logging.getLogger()
     for h in list(root.handlers):
-        root.removeHandler(h)
-        if getattr(h, _MARK, False):
-            h.close()
+        # ours from an earlier call, and the plain stderr handler of the CLI's basicConfig
+        if getattr(h, _MARK, False) or type(h) is logging.StreamHandler:
+            root.removeHandler(h)
+            if getattr(h, _MARK, False):
+                h.close()
     if stderr:
         root.addHandler(_mark(logging.StreamHandler(sys.stderr)))
     if file is not None:
@@ -64,8 +66,12 @@ def configure(level: str = "INFO", file: Path | None = None, *, max_bytes: int =
         root.addHandler(_mark(logging.handlers.RotatingFileHandler(
             file, maxBytes=max_bytes, backupCount=backups, encoding="utf-8", delay=True)))
     root.setLevel(getattr(logging, level.upper(), logging.INFO))
-    for name in ("apscheduler", "apscheduler.scheduler", "apscheduler.executors.default"):
-        logging.getLogger(name).setLevel(logging.INFO)
+    # Set explicitly: the scheduler's own messages at INFO; the executor logs every job run
+    # at INFO (a heartbeat every 30 s), so only its warnings (missed runs) and errors (job
+    # tracebacks) are kept.
+    logging.getLogger("apscheduler").setLevel(logging.INFO)
+    logging.getLogger("apscheduler.scheduler").setLevel(logging.INFO)
+    logging.getLogger("apscheduler.executors.default").setLevel(logging.WARNING)
 
 
 def _clean(text: Any) -> str:
