@@ -77,6 +77,7 @@ def make_engine(url: str | URL, *, busy_timeout_s: float = DEFAULT_BUSY_TIMEOUT_
             parsed = parsed.set(drivername="postgresql+psycopg")
         info = StoreInfo(_shown(parsed), "postgresql", None, float(busy_timeout_s))
         engine = _create(parsed, info, pool_pre_ping=True)
+        _install_postgresql_hooks(engine, info)
     else:
         raise StoreError(f"unsupported store URL {_shown(parsed)}: use sqlite:/// or postgresql://")
     _INFO[engine] = info
@@ -164,7 +165,7 @@ def store_error(engine: Engine, exc: BaseException, *, reading: bool = False) ->
     detail = _first_line(getattr(exc, "orig", None) or exc)
     low = detail.lower()
     where = str(info.path) if info.path else info.url
-    if "database is locked" in low or "database table is locked" in low:
+    if "database is locked" in low or "database table is locked" in low or _pgcode(exc) == "55P03":
         err = StoreError(
             f"database is locked for more than {info.busy_timeout_s:g} s "
             f"(another program keeps a write open on {where})"
@@ -293,6 +294,20 @@ def _install_sqlite_hooks(engine: Engine, info: StoreInfo) -> None:
     def _on_begin(conn: Connection) -> None:
         mode = conn.get_execution_options().get(BEGIN_OPTION, "IMMEDIATE")
         conn.exec_driver_sql("BEGIN" if mode == "DEFERRED" else "BEGIN IMMEDIATE")
+
+
+def _install_postgresql_hooks(engine: Engine, info: StoreInfo) -> None:
+    lock_ms = int(round(info.busy_timeout_s * 1000))
+
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        # Waiting for a row or table lock is bounded like SQLite's busy timeout.
+        autocommit = dbapi_conn.autocommit
+        dbapi_conn.autocommit = True
+        try:
+            dbapi_conn.execute(f"SET lock_timeout = {lock_ms}")
+        finally:
+            dbapi_conn.autocommit = autocommit
 
 
 @contextmanager

@@ -38,6 +38,7 @@ from qcfit.store.engine import (
     to_utc_naive,
     write_tx,
 )
+from qcfit.store.migrate import upgrade_store
 from qcfit.store.schema import line, shift
 
 CHICAGO = zoneinfo.ZoneInfo("America/Chicago")
@@ -199,6 +200,26 @@ def test_lock_held_too_long_is_a_plain_store_error(tmp_path: Path) -> None:
         holder.execute("ROLLBACK")
         holder.close()
     assert run_write(engine, lambda c: c.exec_driver_sql("SELECT 7").scalar_one()) == 7
+    engine.dispose()
+
+
+def test_lock_wait_is_bounded_on_every_backend(store_url: str) -> None:
+    # SQLite: busy_timeout; PostgreSQL: lock_timeout. Both end as the same plain message.
+    engine = make_engine(store_url, busy_timeout_s=0.3)
+    upgrade_store(engine)
+    blocker = make_engine(store_url)
+    with blocker.connect() as other:
+        other.exec_driver_sql(
+            "INSERT INTO line (code, name, active) VALUES ('L1', 'Line 1', "
+            + ("1)" if engine.dialect.name == "sqlite" else "true)")
+        )  # the write lock (SQLite) / a row lock (PostgreSQL), held until rollback
+        with pytest.raises(StoreError, match=r"database is locked for more than 0\.3 s"):
+            with write_tx(engine) as conn:
+                conn.execute(sa.insert(line), {"code": "L1", "name": "mine", "active": True})
+        other.rollback()
+    with write_tx(engine) as conn:
+        conn.execute(sa.insert(line), {"code": "L1", "name": "mine", "active": True})
+    blocker.dispose()
     engine.dispose()
 
 
