@@ -28,6 +28,7 @@ import codecs
 import csv
 import io
 import logging
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -48,8 +49,8 @@ class RawTable:
     ``frame`` has one ``str`` column per header column (named by the normalised header) and
     one row per record that has the right number of fields; ``line_nos`` (int64, same
     length, read-only) is the line each of those records starts on. ``bad_rows`` are the
-    records that could not be split into the header's fields. ``raw`` maps the line number
-    of every record to its original text (filled lazily by :func:`raw_records`).
+    records that could not be split into the header's fields. ``text`` is the decoded file
+    (:func:`raw_records` takes the original text of rejected records from it).
     """
 
     source: str
@@ -155,6 +156,57 @@ def _first_content_line(lines: Sequence[str]) -> int:
 
 
 def _read_fast(text: str, source: str, required, optional, notes: list[str]) -> RawTable:
+    """Quote-free text: one record per line. The common case (header on line 1, no blank
+    line, as many separators as the header needs on every line) is handed to pandas whole;
+    anything else is split line by line first."""
+    end = text.find("\n")
+    head = (text if end < 0 else text[:end]).rstrip("\r")
+    if head.strip():
+        body = "" if end < 0 else text[end + 1 :]
+        columns = _header(head.split(DELIMITER), 1, source, required, optional)
+        frame = _whole_body(body, columns)
+        if frame is not None:
+            line_nos = np.arange(2, 2 + len(frame), dtype=np.int64)
+            return _finish(source, columns, frame, line_nos, [], notes, text)
+    return _read_by_lines(text, source, required, optional, notes)
+
+
+def _whole_body(body: str, columns: Sequence[str]) -> pd.DataFrame | None:
+    """The body parsed in one go, or None when it needs the line-by-line path."""
+    core = body[:-1] if body.endswith("\n") else body
+    if not core:
+        return None
+    records = core.count("\n") + 1
+    # Every line needs exactly len(columns) - 1 separators; a blank line has none. Totals
+    # that balance (one line short, another long) are caught by the parser below, which
+    # refuses any line with too many fields.
+    if core.count(DELIMITER) != (len(columns) - 1) * records:
+        return None
+    try:  # a line with too many fields offset by one with too few: an error or a warning
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", pd.errors.ParserWarning)
+            frame = _parse(io.StringIO(body), columns)
+    except (pd.errors.ParserError, pd.errors.ParserWarning):
+        return None
+    return frame if len(frame) == records else None
+
+
+def _parse(handle: io.StringIO, columns: Sequence[str]) -> pd.DataFrame:
+    return pd.read_csv(
+        handle,
+        header=None,
+        names=list(columns),
+        dtype="str",
+        keep_default_na=False,
+        na_filter=False,
+        skip_blank_lines=False,
+        index_col=False,
+        engine="c",
+        quoting=csv.QUOTE_NONE,
+    )
+
+
+def _read_by_lines(text: str, source: str, required, optional, notes: list[str]) -> RawTable:
     lines = text.split("\n")
     if lines and lines[-1] == "":
         lines.pop()
@@ -172,21 +224,7 @@ def _read_fast(text: str, source: str, required, optional, notes: list[str]) -> 
     ]
     keep = ~blank & ~wrong
     kept = body[keep]
-    if len(kept):
-        frame = pd.read_csv(
-            io.StringIO("\n".join(kept.tolist())),
-            header=None,
-            names=list(columns),
-            dtype="str",
-            keep_default_na=False,
-            na_filter=False,
-            skip_blank_lines=False,
-            index_col=False,
-            engine="c",
-            quoting=csv.QUOTE_NONE,
-        )
-    else:
-        frame = _empty_frame(columns)
+    frame = _parse(io.StringIO("\n".join(kept.tolist())), columns) if len(kept) else _empty_frame(columns)
     if len(frame) != int(keep.sum()):  # the parser disagreed with the line split: be exact
         return _read_with_csv_module(text, source, required, optional, notes)
     _note_blank(notes, int(blank.sum()))

@@ -42,7 +42,7 @@ from __future__ import annotations
 
 import datetime as dt
 import re
-from collections.abc import Collection, Iterable, Mapping
+from collections.abc import Collection, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Literal, Protocol
 from zoneinfo import ZoneInfo
@@ -63,10 +63,10 @@ COUNT_OPTIONAL = ("units_inspected",)
 Ambiguous = Literal["raise", "earlier", "later"]
 AMBIGUOUS_CHOICES = ("raise", "earlier", "later")
 
-_NAIVE_RE = r"\d{4}-\d\d-\d\d[T ]\d\d:\d\d(?::\d\d(?:\.\d{1,9})?)?"
-_OFFSET_RE = r"(?:[Zz]|[+-]\d\d(?::?\d\d)?)"
 _SHIFT_ID_RE = re.compile(r"(\d{4}-\d\d-\d\d)_(\S+)")
-_US = np.timedelta64(1, "us")
+_DIGITS_RE = re.compile(r"\d+")
+_MAX_TS_LENGTH = 64  # longer cells cannot be timestamps (the longest valid form has 35 characters)
+_MIN_TS_LENGTH = 16  # YYYY-MM-DDTHH:MM
 
 
 class Calendar(Protocol):
@@ -124,6 +124,13 @@ class _Problems:
             text = reason(int(i)) if callable(reason) else reason
             self.reasons.setdefault(int(i), []).append(text)
 
+    def add_by_value(self, col: _Column, reasons: Sequence[str | None]) -> np.ndarray:
+        """Add the reason of each row's distinct value (None: fine); return the good mask."""
+        has = np.fromiter((r is not None for r in reasons), dtype=bool, count=len(reasons))
+        bad = has[col.codes] if len(reasons) else np.zeros(self.n, dtype=bool)
+        self.add(bad, lambda i: reasons[col.codes[i]])
+        return ~bad
+
     def bad_mask(self) -> np.ndarray:
         mask = np.zeros(self.n, dtype=bool)
         if self.reasons:
@@ -134,68 +141,80 @@ class _Problems:
         return [BadRow(int(line_nos[i]), "; ".join(r)) for i, r in sorted(self.reasons.items())]
 
 
-def _strip(frame: pd.DataFrame, columns: Iterable[str]) -> tuple[dict[str, pd.Series], int]:
-    """Cells without surrounding spaces, and how many cells had them."""
-    out, changed = {}, 0
-    for c in columns:
-        raw = frame[c]
-        stripped = raw.str.strip()
-        changed += int((stripped.str.len() != raw.str.len()).sum())
-        out[c] = stripped
-    return out, changed
+@dataclass(frozen=True, slots=True)
+class _Column:
+    """A text column as codes (int64, one per row) into its distinct values after removing
+    surrounding spaces; checks then run once per distinct value, not once per row."""
+
+    codes: np.ndarray
+    uniques: list[str]
+    spaced: int  # cells that had surrounding spaces
+
+    @classmethod
+    def of(cls, values: pd.Series) -> _Column:
+        codes, raw = pd.factorize(values.to_numpy(dtype=object))
+        raw_list = [str(u) for u in raw]
+        stripped = [u.strip() for u in raw_list]
+        changed = [k for k, (a, b) in enumerate(zip(raw_list, stripped, strict=True)) if a != b]
+        if not changed:
+            return cls(codes.astype(np.int64), stripped, 0)
+        spaced = int(np.bincount(codes, minlength=len(raw_list))[changed].sum())
+        merged, uniques = pd.factorize(np.asarray(stripped, dtype=object))
+        return cls(merged[codes].astype(np.int64), [str(u) for u in uniques], spaced)
+
+    def values(self) -> np.ndarray:
+        """Row values (object array of str)."""
+        table = np.empty(len(self.uniques), dtype=object)
+        table[:] = self.uniques
+        return table[self.codes]
 
 
-def _check_codes(problems: _Problems, values: pd.Series, known: Collection[str], what: str) -> np.ndarray:
+def _check_codes(problems: _Problems, col: _Column, known: Collection[str], what: str) -> np.ndarray:
     """Mark empty and unknown codes; return the mask of good cells."""
-    arr = values.to_numpy()
-    empty = (values.str.len() == 0).to_numpy()
-    unknown = ~empty & ~values.isin(list(known)).to_numpy()
-    problems.add(empty, f"{what} is empty")
     by_fold = {k.casefold(): k for k in known}
 
-    def reason(i: int) -> str:
-        code = arr[i]
+    def reason(code: str) -> str | None:
+        if not code:
+            return f"{what} is empty"
+        if code in known:
+            return None
         hint = by_fold.get(code.casefold())
         if hint is not None:
             return f"unknown {what} {code!r} (codes are case-sensitive: did you mean {hint!r}?)"
         return f"unknown {what} {code!r} (not in [{_section(what)}] of the config)"
 
-    problems.add(unknown, reason)
-    return ~(empty | unknown)
+    return problems.add_by_value(col, [reason(u) for u in col.uniques])
 
 
 def _section(what: str) -> str:
     return "lines" if what == "line" else "categories"
 
 
-def parse_whole_numbers(problems: _Problems, values: pd.Series, what: str, *, allow_empty: bool = False) -> tuple[np.ndarray, np.ndarray]:
-    """Parse digit-only cells to int64 (0 where bad or empty); return (values, good mask).
+def _whole_numbers(problems: _Problems, col: _Column, what: str, *, allow_empty: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Digit-only cells as int64 (0 where bad or empty); returns (values, good, non-empty).
 
-    Empty cells are good only with ``allow_empty`` (then their value is 0 and the second
-    returned mask excludes them: use ``values.str.len() > 0`` to tell them apart).
+    Empty cells are good only with ``allow_empty``.
     """
-    n = len(values)
-    arr = values.to_numpy()
-    empty = (values.str.len() == 0).to_numpy()
-    digits = values.str.fullmatch(r"\d+").to_numpy(dtype=bool)
-    short = digits & (values.str.len() <= 10).to_numpy()
-    out = np.zeros(n, dtype=np.int64)
-    if short.any():
-        out[short] = values[short].astype("int64").to_numpy()
-    too_big = (digits & ~short) | (short & (out > MAX_COUNT))
-    out[too_big] = 0
-    if not allow_empty:
-        problems.add(empty, f"{what} is empty")
-    problems.add(
-        too_big,
-        lambda i: f"{what} {arr[i]} is larger than {MAX_COUNT:,} (not a plausible count for one "
-        "row: a unit or export error?)",
-    )
-    other = ~empty & ~digits
-    if other.any():
-        problems.add(other, lambda i: f"{what} {arr[i]!r} {_number_problem(arr[i])}")
-    good = (digits & ~too_big) | (empty & allow_empty)
-    return out, good
+    values = np.zeros(len(col.uniques), dtype=np.int64)
+    reasons: list[str | None] = []
+    for k, text in enumerate(col.uniques):
+        reasons.append(_number_reason(text, what, allow_empty))
+        if reasons[-1] is None and text:
+            values[k] = int(text)
+    good = problems.add_by_value(col, reasons)
+    filled = np.fromiter((bool(u) for u in col.uniques), dtype=bool, count=len(col.uniques))
+    return values[col.codes], good, filled[col.codes]
+
+
+def _number_reason(text: str, what: str, allow_empty: bool) -> str | None:
+    if not text:
+        return None if allow_empty else f"{what} is empty"
+    if _DIGITS_RE.fullmatch(text):
+        if len(text) > 10 or int(text) > MAX_COUNT:
+            return (f"{what} {text} is larger than {MAX_COUNT:,} (not a plausible count for one "
+                    "row: a unit or export error?)")
+        return None
+    return f"{what} {text!r} {_number_problem(text)}"
 
 
 def _number_problem(text: str) -> str:
@@ -252,39 +271,134 @@ def _wall_time(utc_naive: pd.DatetimeIndex, tz: ZoneInfo) -> pd.DatetimeIndex:
     return utc_naive.tz_localize("UTC").tz_convert(tz).tz_localize(None)
 
 
-def parse_timestamps(problems: _Problems, values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous) -> tuple[np.ndarray, np.ndarray, int]:
+@dataclass(frozen=True, slots=True)
+class _Stamps:
+    """Timestamp cells as a code-point matrix (n, width) with lengths, spaces removed."""
+
+    text: np.ndarray  # object array of stripped cells
+    chars: np.ndarray  # uint32 (n, width >= 16); 0 past the end of a cell
+    length: np.ndarray  # int64 (n,)
+    spaced: int
+
+    @classmethod
+    def of(cls, values: pd.Series) -> _Stamps:
+        text = values.to_numpy(dtype=object).copy()
+        length = np.fromiter(map(len, text), dtype=np.int64, count=len(text))
+        long = length > _MAX_TS_LENGTH
+        spaced = 0
+        for i in np.flatnonzero(long):  # rare: strip now, so padding cannot hide a timestamp
+            stripped = text[i].strip()
+            spaced += stripped != text[i]
+            text[i], length[i] = stripped, len(stripped)
+        chars = _char_matrix(text, length)
+        edge = _is_space(chars[:, 0]) | _is_space(chars[np.arange(len(text)), np.maximum(length - 1, 0)])
+        if edge.any():
+            spaced += int(edge.sum())
+            for i in np.flatnonzero(edge):
+                text[i] = text[i].strip()
+                length[i] = len(text[i])
+            chars = _char_matrix(text, length)
+        return cls(text, chars, length, spaced)
+
+    def at(self, pos: np.ndarray) -> np.ndarray:
+        """Code point at per-row position ``pos`` (0 where out of range)."""
+        width = self.chars.shape[1]
+        inside = (pos >= 0) & (pos < width)
+        got = self.chars[np.arange(len(pos)), np.clip(pos, 0, width - 1)]
+        return np.where(inside, got, 0)
+
+
+def _char_matrix(text: np.ndarray, length: np.ndarray) -> np.ndarray:
+    n = len(text)
+    usable = np.where(length <= _MAX_TS_LENGTH, text, "")
+    fixed = usable.astype(str) if n else np.array([], dtype="U1")
+    width = max(fixed.dtype.itemsize // 4, _MIN_TS_LENGTH)
+    fixed = fixed.astype(f"U{width}")
+    return fixed.view(np.uint32).reshape(n, width)
+
+
+def _is_space(c: np.ndarray) -> np.ndarray:
+    return (c == 32) | (c == 9)
+
+
+def _is_digit(c: np.ndarray) -> np.ndarray:
+    return (c >= 48) & (c <= 57)
+
+
+def _iso_shape(st: _Stamps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(well formed, has an offset, offset in minutes) from the code points.
+
+    Grammar: ``YYYY-MM-DD`` ``T``/space ``HH:MM``, then digits, ``:`` and ``.`` only, then
+    optionally ``Z``/``z``, ``+HH:MM``, ``+HHMM`` or ``+HH`` (or ``-``). Whether the digits
+    make a real date and time is left to the parser.
+    """
+    c, L = st.chars, st.length
+    ok = (L >= _MIN_TS_LENGTH) & (L <= _MAX_TS_LENGTH)
+    for k in (0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15):
+        ok &= _is_digit(c[:, k])
+    ok &= (c[:, 4] == 45) & (c[:, 7] == 45) & (c[:, 13] == 58) & ((c[:, 10] == 84) | (c[:, 10] == 32))
+    last = st.at(L - 1)
+    zulu = (last == 90) | (last == 122)
+    sign6, sign5, sign3 = (np.isin(st.at(L - k), (43, 45)) & (L - k >= _MIN_TS_LENGTH) for k in (6, 5, 3))
+    colon6 = sign6 & (st.at(L - 3) == 58)
+    d = {k: _is_digit(st.at(L - k)) for k in (1, 2, 4, 5)}
+    form6 = colon6 & d[5] & d[4] & d[2] & d[1]
+    form5 = sign5 & ~form6 & d[4] & _is_digit(st.at(L - 3)) & d[2] & d[1]
+    form3 = sign3 & ~form6 & ~form5 & d[2] & d[1]
+    off_len = np.select([zulu, form6, form5, form3], [1, 6, 5, 3], 0)
+    has_offset = off_len > 0
+    j = np.arange(c.shape[1])[None, :]
+    tail = (j >= _MIN_TS_LENGTH) & (j < (L - off_len)[:, None])
+    allowed = _is_digit(c) | (c == 58) | (c == 46)
+    ok &= ~(tail & ~allowed).any(axis=1)
+    minutes = _offset_minutes(st, L, off_len)
+    return ok, has_offset, minutes
+
+
+def _offset_minutes(st: _Stamps, L: np.ndarray, off_len: np.ndarray) -> np.ndarray:
+    start = L - off_len
+
+    def digit(pos: np.ndarray) -> np.ndarray:
+        return st.at(pos).astype(np.int64) - 48
+
+    hours = digit(start + 1) * 10 + digit(start + 2)
+    mins = np.select([off_len == 6, off_len == 5], [digit(start + 4) * 10 + digit(start + 5), digit(start + 3) * 10 + digit(start + 4)], 0)
+    sign = np.where(st.at(start) == 45, -1, 1)
+    return np.where(np.isin(off_len, (3, 5, 6)), sign * (hours * 60 + mins), 0)
+
+
+def parse_timestamps(problems: _Problems, values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
     """ISO 8601 text -> UTC instants (datetime64[us], naive UTC).
 
-    Returns (instants, good mask, how many carried an offset other than the plant zone's).
+    Returns (instants, good mask, mask of cells whose offset differs from the plant zone's
+    offset at that instant, the stripped text, cells that had surrounding spaces).
     """
     n = len(values)
-    arr = values.to_numpy()
+    st = _Stamps.of(values)
+    arr = st.text
     utc = np.full(n, np.datetime64("NaT"), dtype="datetime64[us]")
-    without = values.str.replace(_OFFSET_RE + "$", "", regex=True)
-    has_offset = (without.str.len() != values.str.len()).to_numpy()
-    shape_ok = without.str.fullmatch(_NAIVE_RE).to_numpy(dtype=bool)
-    empty = (values.str.len() == 0).to_numpy()
+    shape_ok, has_offset, minutes = _iso_shape(st)
+    empty = st.length == 0
     problems.add(empty, "timestamp is empty")
     problems.add(
         ~empty & ~shape_ok,
         lambda i: f"timestamp {arr[i]!r} is not an ISO 8601 date and time "
         "(e.g. 2026-01-05T06:30:00-06:00 or 2026-01-05 06:30:00)",
     )
-    wall = pd.to_datetime(without.where(shape_ok, None), format="ISO8601", errors="coerce")
-    wall_arr = wall.to_numpy().astype("datetime64[us]")
-    invalid = shape_ok & np.isnat(wall_arr)
+    parsed = pd.to_datetime(pd.Series(np.where(shape_ok, arr, None), dtype=object), utc=True,
+                            format="ISO8601", errors="coerce")
+    stamps = pd.DatetimeIndex(parsed).tz_localize(None).as_unit("us").to_numpy()
+    invalid = shape_ok & np.isnat(stamps)
     problems.add(invalid, lambda i: f"timestamp {arr[i]!r} is not a valid date and time")
-    other_zone = 0
+    other_zone = np.zeros(n, dtype=bool)
     with_off = shape_ok & ~invalid & has_offset
     if with_off.any():
-        u = pd.to_datetime(values[with_off], utc=True, format="ISO8601", errors="coerce")
-        u_naive = pd.DatetimeIndex(u).tz_localize(None).as_unit("us")
-        utc[with_off] = u_naive.to_numpy()
-        given = pd.DatetimeIndex(wall_arr[with_off]) - u_naive
-        other_zone = int((given != _offset_at(u_naive, tz)).sum())
+        utc[with_off] = stamps[with_off]
+        plant = _offset_at(pd.DatetimeIndex(stamps[with_off]), tz).to_numpy() // np.timedelta64(1, "m")
+        other_zone[with_off] = minutes[with_off] != plant
     naive = shape_ok & ~invalid & ~has_offset
     if naive.any():
-        local, gap, twice = localize_naive(wall_arr[naive], tz, ambiguous)
+        local, gap, twice = localize_naive(stamps[naive], tz, ambiguous)
         utc[naive] = local
         idx = np.flatnonzero(naive)
         problems.add(
@@ -298,7 +412,7 @@ def parse_timestamps(problems: _Problems, values: pd.Series, tz: ZoneInfo, ambig
             "hour); give the offset, or load with --ambiguous earlier|later",
         )
         utc[_scatter(n, idx, gap | twice)] = np.datetime64("NaT")
-    return utc, ~np.isnat(utc), other_zone
+    return utc, ~np.isnat(utc), other_zone, arr, st.spaced
 
 
 def _scatter(n: int, idx: np.ndarray, sub_mask: np.ndarray) -> np.ndarray:
@@ -349,18 +463,19 @@ def validate_events(
     frame = table.frame
     n = len(frame)
     problems = _Problems(n)
-    cols = ["timestamp", "line", "category"] + (["quantity"] if "quantity" in frame else [])
-    cells, spaced = _strip(frame, cols)
-    ok_line = _check_codes(problems, cells["line"], lines, "line")
-    ok_cat = _check_codes(problems, cells["category"], categories, "category")
-    utc, ok_ts, other_zone = parse_timestamps(problems, cells["timestamp"], calendar.tz, ambiguous)
-    if "quantity" in cells:
-        quantity, ok_q = parse_whole_numbers(problems, cells["quantity"], "quantity")
+    line_col, cat_col = _Column.of(frame["line"]), _Column.of(frame["category"])
+    ok_line = _check_codes(problems, line_col, lines, "line")
+    ok_cat = _check_codes(problems, cat_col, categories, "category")
+    utc, ok_ts, other_zone, ts_text, ts_spaced = parse_timestamps(problems, frame["timestamp"], calendar.tz, ambiguous)
+    spaced = line_col.spaced + cat_col.spaced + ts_spaced
+    if "quantity" in frame:
+        q_col = _Column.of(frame["quantity"])
+        quantity, ok_q, _ = _whole_numbers(problems, q_col, "quantity")
+        spaced += q_col.spaced
     else:
         quantity, ok_q = np.ones(n, dtype=np.int64), np.ones(n, dtype=bool)
     limit = _utc64(now) + np.timedelta64(int(CLOCK_SKEW.total_seconds()), "s")
     future = ok_ts & (utc > limit)
-    ts_text = cells["timestamp"].to_numpy()
     problems.add(
         future,
         lambda i: f"timestamp {ts_text[i]!r} is later than the time of loading "
@@ -375,14 +490,14 @@ def validate_events(
         "(between shifts or on a non-production day)",
     )
     good = ok_line & ok_cat & ok_q & placed & ~nowhere
-    keys = pd.DataFrame({"t": utc, "l": cells["line"].to_numpy(), "c": cells["category"].to_numpy()})
+    keys = pd.DataFrame({"t": utc.view(np.int64), "l": line_col.codes, "c": cat_col.codes})
     _mark_duplicates(problems, keys[good], table.line_nos, "timestamp, line and category; put the total in quantity")
     good &= ~problems.bad_mask()
     events = pd.DataFrame(
         {
             "ts_utc": utc[good],
-            "line": cells["line"].to_numpy()[good],
-            "category": cells["category"].to_numpy()[good],
+            "line": pd.array(line_col.values()[good], dtype="str"),
+            "category": pd.array(cat_col.values()[good], dtype="str"),
             "quantity": quantity[good],
             "line_no": table.line_nos[good],
             "shift": shift[good],
@@ -390,9 +505,10 @@ def validate_events(
     )
     notes = list(table.notes)
     _note_spaces(notes, spaced)
-    if other_zone:
+    converted = int((other_zone & good).sum())
+    if converted:
         notes.append(
-            f"{other_zone} timestamp(s) carried an offset other than {calendar.tz.key}'s and "
+            f"{converted} timestamp(s) carried an offset other than {calendar.tz.key}'s and "
             "were converted to plant time"
         )
     bad = sorted(list(table.bad_rows) + problems.rows(table.line_nos), key=lambda b: b.line_no)
@@ -423,29 +539,28 @@ def validate_counts(
 ) -> CountBatch:
     """Check a per-shift counts table."""
     frame = table.frame
-    n = len(frame)
-    problems = _Problems(n)
-    has_units = "units_inspected" in frame
-    cols = list(COUNT_COLUMNS) + (["units_inspected"] if has_units else [])
-    cells, spaced = _strip(frame, cols)
-    instances, ok_shift = _check_shifts(problems, cells["shift"], calendar, now)
-    ok_line = _check_codes(problems, cells["line"], lines, "line")
-    ok_cat = _check_codes(problems, cells["category"], categories, "category")
-    count, ok_count = parse_whole_numbers(problems, cells["count"], "count")
-    shift_ids = cells["shift"].to_numpy()
-    line_codes = cells["line"].to_numpy()
+    problems = _Problems(len(frame))
+    shift_col, line_col, cat_col, count_col = (_Column.of(frame[c]) for c in COUNT_COLUMNS)
+    instances, ok_shift = _check_shifts(problems, shift_col, calendar, now)
+    ok_line = _check_codes(problems, line_col, lines, "line")
+    ok_cat = _check_codes(problems, cat_col, categories, "category")
+    count, ok_count, _ = _whole_numbers(problems, count_col, "count")
+    spaced = shift_col.spaced + line_col.spaced + cat_col.spaced + count_col.spaced
+    shift_ids, line_codes, cat_codes = shift_col.values(), line_col.values(), cat_col.values()
     good = ok_shift & ok_line & ok_cat & ok_count
-    keys = pd.DataFrame({"s": shift_ids, "l": line_codes, "c": cells["category"].to_numpy()})
+    keys = pd.DataFrame({"s": shift_col.codes, "l": line_col.codes, "c": cat_col.codes})
     _mark_duplicates(problems, keys[good], table.line_nos, "shift, line and category")
     units = _empty_units()
-    if has_units:
-        units = _check_units(problems, cells["units_inspected"], shift_ids, line_codes, ok_shift & ok_line, table.line_nos)
+    if "units_inspected" in frame:
+        units_col = _Column.of(frame["units_inspected"])
+        spaced += units_col.spaced
+        units = _check_units(problems, units_col, shift_ids, line_codes, ok_shift & ok_line, table.line_nos)
     good &= ~problems.bad_mask()
     counts = pd.DataFrame(
         {
-            "shift": shift_ids[good],
-            "line": line_codes[good],
-            "category": cells["category"].to_numpy()[good],
+            "shift": pd.array(shift_ids[good], dtype="str"),
+            "line": pd.array(line_codes[good], dtype="str"),
+            "category": pd.array(cat_codes[good], dtype="str"),
             "count": count[good],
             "line_no": table.line_nos[good],
         }
@@ -472,19 +587,15 @@ def _empty_units() -> pd.DataFrame:
     )
 
 
-def _check_shifts(problems: _Problems, values: pd.Series, calendar: Calendar, now: dt.datetime) -> tuple[dict[str, ShiftInstance], np.ndarray]:
-    arr = values.to_numpy()
-    reasons: dict[str, str] = {}
+def _check_shifts(problems: _Problems, col: _Column, calendar: Calendar, now: dt.datetime) -> tuple[dict[str, ShiftInstance], np.ndarray]:
+    reasons: list[str | None] = []
     instances: dict[str, ShiftInstance] = {}
-    for text in pd.unique(arr):
-        reason, inst = _one_shift(str(text), calendar, now)
-        if inst is None:
-            reasons[text] = reason
-        else:
+    for text in col.uniques:
+        reason, inst = _one_shift(text, calendar, now)
+        reasons.append(None if inst is not None else reason)
+        if inst is not None:
             instances[text] = inst
-    bad = values.isin(list(reasons)).to_numpy()
-    problems.add(bad, lambda i: reasons[arr[i]])
-    return instances, ~bad
+    return instances, problems.add_by_value(col, reasons)
 
 
 def _one_shift(text: str, calendar: Calendar, now: dt.datetime) -> tuple[str, ShiftInstance | None]:
@@ -508,9 +619,9 @@ def _one_shift(text: str, calendar: Calendar, now: dt.datetime) -> tuple[str, Sh
     return "", inst
 
 
-def _check_units(problems: _Problems, values: pd.Series, shift_ids: np.ndarray, line_codes: np.ndarray, placed: np.ndarray, line_nos: np.ndarray) -> pd.DataFrame:
-    units, ok = parse_whole_numbers(problems, values, "units_inspected", allow_empty=True)
-    given = ok & placed & (values.str.len() > 0).to_numpy()
+def _check_units(problems: _Problems, col: _Column, shift_ids: np.ndarray, line_codes: np.ndarray, placed: np.ndarray, line_nos: np.ndarray) -> pd.DataFrame:
+    units, ok, filled = _whole_numbers(problems, col, "units_inspected", allow_empty=True)
+    given = ok & placed & filled
     frame = pd.DataFrame({"shift": shift_ids, "line": line_codes, "units": units, "line_no": line_nos})[given]
     first = frame.drop_duplicates(["shift", "line"], keep="first")
     merged = frame.merge(first, on=["shift", "line"], suffixes=("", "_first"))

@@ -10,7 +10,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qcfit.errors import BadRow, InputFileError
-from qcfit.ingest_csv import _read_fast, _read_with_csv_module, raw_records, read_table
+from qcfit.ingest_csv import (
+    _read_by_lines,
+    _read_fast,
+    _read_with_csv_module,
+    raw_records,
+    read_table,
+)
 
 REQ = ("timestamp", "line", "category")
 OPT = ("quantity",)
@@ -88,6 +94,13 @@ def test_wrong_field_counts_are_bad_rows_on_both_paths():
     assert fast.notes == quoted.notes == ("1 blank line(s) ignored",)
 
 
+@pytest.mark.parametrize("body", ["a,b,c,d,e\n0\n", "0\na,b,c,d,e\n"])
+def test_too_long_and_too_short_lines_that_balance_are_both_found(body):
+    """Separator totals match the header here, so the whole-file shortcut must notice."""
+    t = read(f"timestamp,line,category\n{body}".encode())
+    assert sorted(b.reason for b in t.bad_rows) == ["expected 3 fields, found 1", "expected 3 fields, found 5"]
+
+
 def test_quoted_field_spanning_lines_keeps_later_line_numbers():
     t = read(b'timestamp,line,category\n"a\nb",L1,SCR\nc,L2,DNT\n')
     assert t.line_nos.tolist() == [2, 4]
@@ -115,13 +128,14 @@ def test_raw_records_give_original_text_for_rejects():
 _cell = st.text(alphabet="abcXYZ0129 -:.+é", max_size=6)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=200, deadline=None)
 @given(
-    rows=st.lists(st.lists(_cell, min_size=1, max_size=5), min_size=1, max_size=12),
+    rows=st.lists(st.one_of(st.lists(_cell, min_size=3, max_size=3), st.lists(_cell, min_size=1, max_size=5)),
+                  min_size=1, max_size=12),
     blank_every=st.integers(min_value=0, max_value=4),
 )
 def test_fast_path_agrees_with_csv_module(rows, blank_every):
-    """Invariant: without quotes both readers give the same cells, line numbers and bad rows."""
+    """Invariant: without quotes all three readers give the same cells, line numbers and bad rows."""
     lines = ["timestamp,line,category"]
     for i, r in enumerate(rows):
         if blank_every and i % blank_every == 0:
@@ -129,13 +143,13 @@ def test_fast_path_agrees_with_csv_module(rows, blank_every):
         lines.append(",".join(r))
     text = "\n".join(lines) + "\n"
     outcomes = []
-    for reader in (_read_fast, _read_with_csv_module):
+    for reader in (_read_fast, _read_by_lines, _read_with_csv_module):
         try:
             t = reader(text, "f.csv", REQ, OPT, [])
             outcomes.append((t.frame.to_dict("list"), t.line_nos.tolist(), t.bad_rows, t.notes))
         except InputFileError as exc:
             outcomes.append(str(exc))
-    assert outcomes[0] == outcomes[1]
+    assert outcomes[0] == outcomes[1] == outcomes[2]
 
 
 def test_csv_module_path_matches_a_csv_writer_round_trip():
