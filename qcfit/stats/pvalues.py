@@ -290,9 +290,11 @@ def resolve(
         too_big = idx[~small[idx]]
         if too_big.size:
             i = int(too_big[0])
+            mo = models[model_of[i]]
+            why = (f"needs {mo.n_outcomes} outcomes (limit {exact_limit})" if mo.enumerate
+                   else "is only available for one line or two-row tables")
             raise InvalidArgumentError(
-                "pvalue", f"exact enumeration of line {i} needs {models[model_of[i]].n_outcomes} "
-                f"outcomes (limit {exact_limit}); use 'monte-carlo' or 'auto'")
+                "pvalue", f"exact enumeration of line {i} {why}; use 'monte-carlo' or 'auto'")
         p[idx] = _exact(t, idx, model_of, models)
         method[idx] = "exact"
         reason[idx] = "exact enumeration (requested)"

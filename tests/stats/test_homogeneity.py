@@ -160,6 +160,11 @@ def test_empty_rows_and_columns_are_dropped_and_reported():
     assert none.method_reason == "not tested: no defects" and math.isnan(none.pvalue)
 
 
+def test_exact_is_refused_for_larger_tables():
+    with pytest.raises(InvalidArgumentError, match="only available for one line or two-row"):
+        compare_groups([[1, 2], [3, 1], [2, 2]], pvalue="exact")
+
+
 def test_bad_table_is_rejected():
     with pytest.raises(InvalidArgumentError, match=r"table: negative count -1 at \[1, 0\]"):
         compare_groups([[1, 2], [-1, 3]])
