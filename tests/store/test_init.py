@@ -2,24 +2,34 @@
 
 from __future__ import annotations
 
+import atexit
 import dataclasses
 import datetime as dt
+import functools
 import shutil
 import subprocess
 import sys
+import tempfile
 from pathlib import Path
 
 import pytest
 import sqlalchemy as sa
 from click.testing import CliRunner
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from qcfit.cli import main
 from qcfit.config import load_config
 from qcfit.errors import InvalidArgumentError, SchemaError, StoreError
 from qcfit.store import schema as s
 from qcfit.store.engine import from_utc_naive, make_engine, read_tx, write_tx
-from qcfit.store.migrate import head_revision, init_store, migrations_dir
-from qcfit.store.reference import read_categories, read_lines, record_config_version
+from qcfit.store.migrate import head_revision, init_store, migrations_dir, upgrade_store
+from qcfit.store.reference import (
+    read_categories,
+    read_lines,
+    record_config_version,
+    sync_reference,
+)
 
 NOW = dt.datetime(2026, 1, 5, 6, 0, tzinfo=dt.UTC)
 LATER = NOW + dt.timedelta(days=3)
@@ -237,3 +247,45 @@ def test_init_runs_from_the_root_directory(config_path: Path) -> None:
     assert run.returncode == 0, run.stderr
     assert f"schema: created at revision {head_revision()}" in run.stdout
     assert config_path.with_suffix(".sqlite").is_file()
+
+
+CODES = st.sampled_from(["L1", "L2", "L3", "PRESS-7", "Ω"])
+NAMES = st.sampled_from(["Line", "Press", "Glaze", "line 2"])
+CONFIGS = st.lists(st.dictionaries(CODES, NAMES, max_size=5), min_size=1, max_size=5)
+
+
+@functools.lru_cache(maxsize=1)
+def _migrated_template() -> Path:
+    """An empty store at head, made once and copied for each hypothesis example."""
+    folder = tempfile.mkdtemp(prefix="qcfit-template-")
+    atexit.register(shutil.rmtree, folder, True)
+    path = Path(folder) / "store.sqlite"
+    engine = make_engine(f"sqlite:///{path}")
+    upgrade_store(engine)
+    engine.dispose()  # the last close checkpoints the WAL into the file
+    return path
+
+
+@settings(max_examples=40, deadline=None)
+@given(history=CONFIGS, categories=st.lists(st.dictionaries(CODES, NAMES, max_size=5), max_size=4))
+def test_sync_invariants_over_a_config_history(history, categories) -> None:
+    # Whatever sequence of configs init sees: the active lines are exactly the last config's,
+    # every line or category ever named is still there, and names follow the last mention.
+    cat_history = (categories + [{}] * len(history))[: len(history)]
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "s.sqlite"
+        shutil.copyfile(_migrated_template(), path)
+        engine = make_engine(f"sqlite:///{path}")
+        with write_tx(engine) as conn:
+            for lines, cats in zip(history, cat_history, strict=True):
+                sync_reference(conn, lines, cats)
+            active = read_lines(conn)
+            every = read_lines(conn, active_only=False)
+            stored_cats = read_categories(conn)
+        engine.dispose()
+    assert active == dict(sorted(history[-1].items()))
+    assert set(every) == set().union(*history)
+    last_name = {code: name for lines in history for code, name in lines.items()}
+    assert every == dict(sorted(last_name.items()))
+    last_cat = {code: name for cats in cat_history for code, name in cats.items()}
+    assert stored_cats == dict(sorted(last_cat.items()))
