@@ -205,38 +205,107 @@ def _next_draws(p: np.ndarray, b: np.ndarray, levels: tuple[float, ...], rel_se:
     return want
 
 
+def _groups(keys: np.ndarray) -> list[np.ndarray]:
+    """Positions of equal keys, one array per distinct key."""
+    order = np.argsort(keys, kind="stable")
+    return np.split(order, np.flatnonzero(np.diff(keys[order])) + 1) if keys.size else []
+
+
 def _monte_carlo(t, lines, model_of, models, root, draws, levels, rel_se, adaptive):
-    """Monte Carlo p for ``lines`` (indices); returns (p, se, B) arrays for those lines."""
-    samples: dict[int, ReferenceSample] = {}
+    """Monte Carlo p for ``lines`` (indices); returns (p, se, B) arrays for those lines.
+
+    Lines with the same null model share one reference sample, dropped after use.
+    """
     b = np.full(len(lines), min(draws, CHUNK) if adaptive else draws, dtype=np.int64)
     p = np.empty(len(lines))
-    pending = np.ones(len(lines), dtype=bool)
-    while pending.any():
-        for key in np.unique(model_of[lines][pending]):
-            sel = np.flatnonzero((model_of[lines] == key) & pending)
-            m = models[key]
-            ref = samples.setdefault(key, ReferenceSample(m.sampler, root, m.words))
-            for size in np.unique(b[sel]):
-                s = sel[b[sel] == size]
+    for group in _groups(model_of[lines]):
+        mo = models[model_of[lines[group[0]]]]
+        ref = ReferenceSample(mo.sampler, root, mo.words)
+        pending = group
+        while pending.size:
+            for size in np.unique(b[pending]):
+                s = pending[b[pending] == size]
                 p[s] = (1 + ref.count_ge(t[lines[s]], int(size))) / (1 + size)
-        if not adaptive:
-            break
-        nxt = np.where(pending, _next_draws(p, b, levels, rel_se, draws), b)
-        pending = nxt > b
-        b = nxt
+            if not adaptive:
+                break
+            nxt = _next_draws(p[pending], b[pending], levels, rel_se, draws)
+            grow = nxt > b[pending]
+            b[pending] = nxt
+            pending = pending[grow]
     se = np.sqrt(p * (1 - p) / b)
     return p, se, b
 
 
 def _exact(t, lines, model_of, models):
     p = np.empty(len(lines))
-    for key in np.unique(model_of[lines]):
-        sel = np.flatnonzero(model_of[lines] == key)
-        enum = models[key].enumerate
+    for group in _groups(model_of[lines]):
+        enum = models[model_of[lines[group[0]]]].enumerate
         assert enum is not None
         values, probs = enum()
-        p[sel] = exact_tail(values, probs, t[lines[sel]])
+        p[group] = exact_tail(values, probs, t[lines[group]])
     return p
+
+
+@dataclass(slots=True)
+class _Work:
+    """Lines that need an exact or Monte Carlo p-value, with their null models (internal)."""
+
+    idx: np.ndarray
+    model_of: np.ndarray
+    models: list[Model]
+    t: np.ndarray
+    small: np.ndarray
+
+
+def _prepare(idx, m, build, exact_limit) -> _Work:
+    model_of = np.zeros(m, dtype=np.intp)
+    model_of[idx], models, t_rank = build(idx)
+    t = np.full(m, np.nan)
+    t[idx] = t_rank
+    fits = np.array([mo.enumerate is not None and mo.n_outcomes <= exact_limit
+                     for mo in models], dtype=bool)
+    small = np.zeros(m, dtype=bool)
+    small[idx] = fits[model_of[idx]]
+    return _Work(idx, model_of, models, t, small)
+
+
+def _requested(out: Resolved, w: _Work, mode: str, draws: int, root: int, exact_limit: int
+               ) -> None:
+    """Every line by the one method asked for ("exact" or "monte-carlo")."""
+    idx = w.idx
+    if mode == "exact":
+        too_big = idx[~w.small[idx]]
+        if too_big.size:
+            i = int(too_big[0])
+            mo = w.models[w.model_of[i]]
+            why = (f"needs {mo.n_outcomes} outcomes (limit {exact_limit})" if mo.enumerate
+                   else "is only available for one line or two-row tables")
+            raise InvalidArgumentError(
+                "pvalue", f"exact enumeration of line {i} {why}; use 'monte-carlo' or 'auto'")
+        out.pvalue[idx] = _exact(w.t, idx, w.model_of, w.models)
+        out.method[idx] = "exact"
+        out.reason[idx] = "exact enumeration (requested)"
+        return
+    out.pvalue[idx], out.se[idx], out.draws[idx] = _monte_carlo(
+        w.t, idx, w.model_of, w.models, root, draws, (), 1.0, adaptive=False)
+    out.method[idx] = "monte-carlo"
+    out.reason[idx] = f"Monte Carlo with {draws} draws (requested)"
+
+
+def _auto(out: Resolved, w: _Work, why: np.ndarray, draws: int, root: int,
+          levels: tuple[float, ...], rel_se: float) -> None:
+    """Exact where the enumeration is small, else adaptive Monte Carlo."""
+    small = w.small[w.idx]
+    ex, mc = w.idx[small], w.idx[~small]
+    if ex.size:
+        out.pvalue[ex] = _exact(w.t, ex, w.model_of, w.models)
+        out.method[ex] = "exact"
+        out.reason[ex] = _reasons("exact enumeration: {}", why[small])
+    if mc.size:
+        out.pvalue[mc], out.se[mc], out.draws[mc] = _monte_carlo(
+            w.t, mc, w.model_of, w.models, root, draws, levels, rel_se, adaptive=True)
+        out.method[mc] = "monte-carlo"
+        out.reason[mc] = _reasons("Monte Carlo, {1} draws: {0}", why[~small], out.draws[mc])
 
 
 def resolve(
@@ -261,62 +330,25 @@ def resolve(
     an exact or Monte Carlo p-value, which rank by that statistic.
     """
     m = t.shape[0]
-    p = np.where(testable, p_asym, np.nan)
-    se = np.zeros(m)
-    used = np.zeros(m, dtype=np.int64)
-    method = np.full(m, "asymptotic", dtype=object)
-    reason = np.full(m, "", dtype=object)
+    out = Resolved(np.where(testable, p_asym, np.nan), np.zeros(m), np.zeros(m, dtype=np.int64),
+                   np.full(m, "asymptotic", dtype=object), np.full(m, "", dtype=object))
     idx = np.flatnonzero(testable)
     if mode == "asymptotic":
-        reason[idx] = "asymptotic chi-square (requested)"
-        return Resolved(p, se, used, method, reason)
+        out.reason[idx] = "asymptotic chi-square (requested)"
+        return out
     if mode == "auto":
-        near = _near(p_asym, levels, refine_factor)
-        keep = idx[cochran[idx] & ~near[idx]]
-        reason[keep] = ("asymptotic: Cochran's rule holds (all expected >= 1, at most 20% "
-                        "below 5) and p is not near a decision level")
-        idx = idx[~(cochran[idx] & ~near[idx])]
-    model_of = np.zeros(m, dtype=np.intp)
+        settled = cochran[idx] & ~_near(p_asym[idx], levels, refine_factor)
+        out.reason[idx[settled]] = ("asymptotic: Cochran's rule holds (all expected >= 1, at "
+                                    "most 20% below 5) and p is not near a decision level")
+        idx = idx[~settled]
     if idx.size == 0:
-        return Resolved(p, se, used, method, reason)
-    model_of[idx], models, t_rank = build(idx)
-    t = np.full(m, np.nan)
-    t[idx] = t_rank
-    fits = np.array([mo.enumerate is not None and mo.n_outcomes <= exact_limit
-                     for mo in models], dtype=bool)
-    small = np.zeros(m, dtype=bool)
-    small[idx] = fits[model_of[idx]]
-    if mode == "exact":
-        too_big = idx[~small[idx]]
-        if too_big.size:
-            i = int(too_big[0])
-            mo = models[model_of[i]]
-            why = (f"needs {mo.n_outcomes} outcomes (limit {exact_limit})" if mo.enumerate
-                   else "is only available for one line or two-row tables")
-            raise InvalidArgumentError(
-                "pvalue", f"exact enumeration of line {i} {why}; use 'monte-carlo' or 'auto'")
-        p[idx] = _exact(t, idx, model_of, models)
-        method[idx] = "exact"
-        reason[idx] = "exact enumeration (requested)"
-        return Resolved(p, se, used, method, reason)
-    if mode == "monte-carlo":
-        p[idx], se[idx], used[idx] = _monte_carlo(
-            t, idx, model_of, models, root, draws, levels, rel_se, adaptive=False)
-        method[idx] = "monte-carlo"
-        reason[idx] = f"Monte Carlo with {draws} draws (requested)"
-        return Resolved(p, se, used, method, reason)
-    why = np.where(cochran[idx], "asymptotic p is within a factor "
-                   f"{refine_factor:g} of a decision level", "Cochran's rule fails "
-                   "(an expected count below 1 or over 20% below 5)")
-    ex, why_ex = idx[small[idx]], why[small[idx]]
-    if ex.size:
-        p[ex] = _exact(t, ex, model_of, models)
-        method[ex] = "exact"
-        reason[ex] = _reasons("exact enumeration: {}", why_ex)
-    mc, why_mc = idx[~small[idx]], why[~small[idx]]
-    if mc.size:
-        p[mc], se[mc], used[mc] = _monte_carlo(
-            t, mc, model_of, models, root, draws, levels, rel_se, adaptive=True)
-        method[mc] = "monte-carlo"
-        reason[mc] = _reasons("Monte Carlo, {1} draws: {0}", why_mc, used[mc])
-    return Resolved(p, se, used, method, reason)
+        return out
+    work = _prepare(idx, m, build, exact_limit)
+    if mode != "auto":
+        _requested(out, work, mode, draws, root, exact_limit)
+        return out
+    why = np.where(cochran[idx], f"asymptotic p is within a factor {refine_factor:g} of a "
+                   "decision level", "Cochran's rule fails (an expected count below 1 or "
+                   "over 20% below 5)")
+    _auto(out, work, why, draws, root, levels, rel_se)
+    return out
