@@ -12,6 +12,10 @@ SQLite discipline, set on every new DBAPI connection of an engine made here:
   ``engine.connect()``) is IMMEDIATE too: read through :func:`read_tx`, or a forgotten
   open connection holds the write lock until it commits or closes.
 
+PostgreSQL (psycopg 3; ``postgresql://`` means ``postgresql+psycopg://``): ``lock_timeout``
+equal to the busy timeout, so a writer waiting on another's row lock gives up the same way;
+pre-ping on checkout, so a restarted server does not break a long-running service.
+
 Every SQLAlchemy error raised inside :func:`write_tx`, :func:`read_tx` or
 :func:`translate_errors` becomes a :class:`~qcfit.errors.StoreError` (or
 :class:`~qcfit.errors.SchemaError`) with a plain message; the original stays chained.

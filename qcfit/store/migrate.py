@@ -362,7 +362,7 @@ def _backup_if_upgrading(engine: Engine, location: Path) -> Path | None:
 
 def _sqlite_copy(source: Path, target: Path) -> None:
     try:
-        src = sqlite3.connect(f"file:{source}?mode=ro", uri=True)
+        src = sqlite3.connect(f"{source.as_uri()}?mode=ro", uri=True)
         try:
             dst = sqlite3.connect(target)
             try:
