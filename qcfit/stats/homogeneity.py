@@ -81,7 +81,7 @@ def _table_model(rows: np.ndarray, cols: np.ndarray, statistic: str) -> pvalues.
 
         caps = tuple(int(c) for c in cols)
         # more than 10,000 defects in the first row is never a small enumeration
-        count = n_bounded(int(rows[0]), caps) if rows[0] <= 10_000 else pvalues.EXACT_LIMIT + 1
+        count = n_bounded(int(rows[0]), caps) if rows[0] <= 10_000 else pvalues.EXACT_MAX + 1
 
         def enumerate_() -> tuple[np.ndarray, np.ndarray]:
             x = bounded_compositions(int(rows[0]), caps)
@@ -91,7 +91,7 @@ def _table_model(rows: np.ndarray, cols: np.ndarray, statistic: str) -> pvalues.
         enum = enumerate_
     else:
         dist = stats.random_table(rows, cols)
-        count, enum = pvalues.EXACT_LIMIT + 1, None
+        count, enum = pvalues.EXACT_MAX + 1, None
 
         def sample(rng: np.random.Generator, size: int) -> np.ndarray:
             return rank(dist.rvs(size=size, random_state=rng))

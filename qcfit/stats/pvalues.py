@@ -42,7 +42,8 @@ from qcfit.errors import InvalidArgumentError
 
 DEFAULT_DRAWS = 10_000
 DEFAULT_LEVELS: tuple[float, ...] = (0.01, 1 / 370, 0.05)
-EXACT_LIMIT = 30_000  # enumeration costs about as much as 10,000 draws here
+EXACT_LIMIT = 30_000  # auto enumerates up to here (costs about as much as 10,000 draws)
+EXACT_MAX = 2_000_000  # most outcomes enumerated when "exact" is asked for
 CHUNK = 2_500
 REFINE_FACTOR = 3.0
 REFINE_REL_SE = 0.02
@@ -269,16 +270,17 @@ def _prepare(idx, m, build, exact_limit) -> _Work:
     return _Work(idx, model_of, models, t, small)
 
 
-def _requested(out: Resolved, w: _Work, mode: str, draws: int, root: int, exact_limit: int
-               ) -> None:
+def _requested(out: Resolved, w: _Work, mode: str, draws: int, root: int) -> None:
     """Every line by the one method asked for ("exact" or "monte-carlo")."""
     idx = w.idx
     if mode == "exact":
-        too_big = idx[~w.small[idx]]
+        fits = np.array([mo.enumerate is not None and mo.n_outcomes <= EXACT_MAX
+                         for mo in w.models], dtype=bool)
+        too_big = idx[~fits[w.model_of[idx]]]
         if too_big.size:
             i = int(too_big[0])
             mo = w.models[w.model_of[i]]
-            why = (f"needs {mo.n_outcomes} outcomes (limit {exact_limit})" if mo.enumerate
+            why = (f"needs {mo.n_outcomes} outcomes (limit {EXACT_MAX})" if mo.enumerate
                    else "is only available for one line or two-row tables")
             raise InvalidArgumentError(
                 "pvalue", f"exact enumeration of line {i} {why}; use 'monte-carlo' or 'auto'")
@@ -345,7 +347,7 @@ def resolve(
         return out
     work = _prepare(idx, m, build, exact_limit)
     if mode != "auto":
-        _requested(out, work, mode, draws, root, exact_limit)
+        _requested(out, work, mode, draws, root)
         return out
     why = np.where(cochran[idx], f"asymptotic p is within a factor {refine_factor:g} of a "
                    "decision level", "Cochran's rule fails (an expected count below 1 or "

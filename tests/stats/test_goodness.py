@@ -284,3 +284,21 @@ def test_bad_options_are_rejected():
         fit_to_baseline([1, 2], [0.5, 0.5], seed=-1)
     with pytest.raises(InvalidArgumentError, match="draws"):
         fit_to_baseline([1, 2], [0.5, 0.5], draws=0)
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(st.lists(st.integers(0, 12), min_size=3, max_size=5).filter(lambda c: sum(c) > 0),
+       st.randoms(use_true_random=False))
+def test_invariant_under_relabelling_categories(counts, rnd):
+    obs = np.array(counts)
+    p0 = np.arange(1, obs.size + 1, dtype=float)
+    p0 /= p0.sum()
+    perm = list(range(obs.size))
+    rnd.shuffle(perm)
+    for pv in ("asymptotic", "exact"):
+        a = fit_to_baseline(obs, p0, pvalue=pv)
+        b = fit_to_baseline(obs[perm], p0[perm], pvalue=pv)
+        assert a.statistic == pytest.approx(b.statistic, rel=1e-12, abs=1e-12)
+        assert a.pvalue == pytest.approx(b.pvalue, rel=1e-9, abs=1e-12)
+        assert 0.0 <= a.pvalue <= 1.0
+        np.testing.assert_allclose(a.adjusted_residuals[perm], b.adjusted_residuals, atol=1e-12)

@@ -227,3 +227,25 @@ def test_result_is_frozen_with_plain_scalars():
     with pytest.raises(ValueError):
         r.adjusted_residuals[0, 0] = 0.0
     assert float(bergsma_v(30.0701491, 2757, 2, 3)) == pytest.approx(0.1009199828, rel=1e-8)
+
+
+@settings(derandomize=True, max_examples=30, deadline=None)
+@given(arrays(np.int64, st.tuples(st.integers(2, 4), st.integers(2, 5)),
+              elements=st.integers(0, 40)), st.randoms(use_true_random=False))
+def test_invariant_under_relabelling_and_transposing(table, rnd):
+    if (table.sum(axis=0) > 0).sum() < 2 or (table.sum(axis=1) > 0).sum() < 2:
+        return
+    rows, cols = list(range(table.shape[0])), list(range(table.shape[1]))
+    rnd.shuffle(rows)
+    rnd.shuffle(cols)
+    a = compare_groups(table, pvalue="asymptotic")
+    b = compare_groups(table[np.ix_(rows, cols)], pvalue="asymptotic")
+    c = compare_groups(table.T, pvalue="asymptotic")
+    for other in (b, c):
+        assert a.statistic == pytest.approx(other.statistic, rel=1e-10, abs=1e-12)
+        assert a.effect_size == pytest.approx(other.effect_size, rel=1e-10, abs=1e-12)
+        assert a.effect_size_corrected == pytest.approx(other.effect_size_corrected,
+                                                        rel=1e-9, abs=1e-12)
+    assert 0.0 <= a.effect_size_corrected <= a.effect_size + 1e-12
+    np.testing.assert_allclose(b.adjusted_residuals, a.adjusted_residuals[np.ix_(rows, cols)],
+                               atol=1e-10)
