@@ -163,7 +163,7 @@ class LoadReport:
 
 @dataclass(frozen=True, slots=True)
 class _Who:
-    now: dt.datetime
+    at: dt.datetime  # the load time (passed in by the caller)
     os_user: str
     host: str
 
@@ -302,7 +302,7 @@ def _load_events(
     table = read_table(data, source=source, required=EVENT_COLUMNS, optional=EVENT_OPTIONAL)
     batch = validate_events(
         table, lines=config.lines, categories=config.categories, calendar=calendar,
-        now=who.now, ambiguous=ambiguous,
+        now=who.at, ambiguous=ambiguous,
     )
     batch, notes = _events_since(batch, since)
     bad = _renumber(batch.bad_rows, row_numbers)
@@ -347,7 +347,7 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
         bad = sorted(bad + conflict_bad, key=lambda b: b.line_no)
         _stop_if_bad(source, bad, len(ev), skip_bad)
     new, restated, unchanged = _split_known(ev, existing)
-    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.now,
+    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.at,
                           os_user=who.os_user, host=who.host)
     new = new.sort_values(["shift_id", "line", "ts_utc"], kind="stable")
     insert_events(conn, new, load_id)
@@ -363,7 +363,7 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
     shift_ids = tuple(sorted(batch.instances[int(i)].id for i in np.unique(ev["shift"].to_numpy())))
     log.info("%s: load %d, %d events added, %d restated", source, load_id, len(new), len(restated))
     return LoadReport(
-        kind, source, digest, load_id, False, who.now, rows_read=batch.rows_read,
+        kind, source, digest, load_id, False, who.at, rows_read=batch.rows_read,
         rows_accepted=len(ev), rows_rejected=len(bad), events_added=len(new),
         events_unchanged=len(unchanged), events_restated=len(restated),
         cells_written=inserted + len(changes), corrections=len(corrections), shifts=shift_ids,
@@ -449,7 +449,7 @@ def _load_counts(
     calendar = ShiftCalendar.from_config(config)
     table = read_table(data, source=source, required=COUNT_COLUMNS, optional=COUNT_OPTIONAL)
     batch = validate_counts(table, lines=config.lines, categories=config.categories,
-                            calendar=calendar, now=who.now)
+                            calendar=calendar, now=who.at)
     batch, notes = _counts_since(batch, since)
     bad = _renumber(batch.bad_rows, row_numbers)
     _stop_if_bad(source, bad, len(batch.counts), skip_bad)
@@ -485,7 +485,7 @@ def _store_counts(conn, batch: CountBatch, table: RawTable, bad: list[BadRow], n
     if clash_bad:
         bad = sorted(bad + clash_bad, key=lambda b: b.line_no)
         _stop_if_bad(source, bad, len(counts), skip_bad)
-    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.now,
+    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.at,
                           os_user=who.os_user, host=who.host)
     before = len(count_cells(conn, ids.values()))
     cell_changes = write_counts(conn, counts[["shift_id", "line", "category", "count"]], load_id)
@@ -497,7 +497,7 @@ def _store_counts(conn, batch: CountBatch, table: RawTable, bad: list[BadRow], n
                 corrections=corrections, note=_note_text(notes, rejects_path))
     log.info("%s: load %d, %d cells, %d corrections", source, load_id, len(counts), corrections)
     return LoadReport(
-        kind, source, digest, load_id, False, who.now, rows_read=batch.rows_read,
+        kind, source, digest, load_id, False, who.at, rows_read=batch.rows_read,
         rows_accepted=len(counts), rows_rejected=len(bad), cells_written=inserted + len(cell_changes),
         units_written=len(units), corrections=corrections,
         shifts=tuple(sorted(set(counts["shift"]))), rejects_path=rejects_path, notes=tuple(notes),
