@@ -24,7 +24,7 @@ Rules of a load (one call = one store transaction):
   for one shift add up. An event is identified by (instant, line, category): a row whose
   key is already stored is not added again (overlapping exports are harmless); if it gives
   a different quantity, the stored event is restated and the count change is recorded as a
-  correction.
+  correction (restating an event with quantity 0 withdraws it; events are never deleted).
 * A counts file states cells; restating a stored cell with a different value (count or
   units inspected) is a correction, kept in ``count_correction`` and counted in the load's
   audit row. Cells a file does not name are left as they are.

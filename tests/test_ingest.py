@@ -110,6 +110,15 @@ def test_restated_event_quantity_is_a_correction(plant_store, tmp_path):
     assert query(plant_store, f"SELECT corrections FROM load WHERE id = {report.load_id}") == [(1,)]
 
 
+def test_event_withdrawn_by_quantity_zero(plant_store, tmp_path):
+    a = write(tmp_path, "a.csv", "timestamp,line,category,quantity\n2026-01-05 07:00,L1,SCR,1\n2026-01-05 08:00,L1,SCR,1\n")
+    b = write(tmp_path, "b.csv", "timestamp,line,category,quantity\n2026-01-05 08:00,L1,SCR,0\n")
+    load_events_file(plant_store.engine, plant_store.config, a, now=NOW, **WHO)
+    report = load_events_file(plant_store.engine, plant_store.config, b, now=NOW, **WHO)
+    assert (report.events_restated, report.corrections) == (1, 1)
+    assert cells(plant_store) == {("2026-01-05_A", "L1", "SCR"): 1}
+
+
 COUNTS = (
     "shift,line,category,count,units_inspected\n"
     "2026-01-05_A,L1,SCR,12,4800\n"
