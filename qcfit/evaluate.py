@@ -179,6 +179,27 @@ def chisq_power(w: float, dof: int, n: int, alpha: float) -> float:
     return float(qstats.chisq_power(w, dof, n, alpha))
 
 
+def chisq_powers(w: Any, dof: Any, n: Any, alpha: Any) -> np.ndarray:
+    """:func:`chisq_power` for arrays (one scipy call; 0 where dof < 1 or n < 1)."""
+    w, dof, n, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (w, dof, n, alpha)))
+    ok = (dof >= 1) & (n >= 1)
+    d = np.where(ok, dof, 1.0)
+    crit = sps.chi2.isf(alpha, d)
+    return np.where(ok, sps.ncx2.sf(crit, d, np.where(ok, n, 1.0) * w * w), 0.0)
+
+
+def poisson_powers(mu0: Any, ratio: Any, alpha: Any) -> np.ndarray:
+    """:func:`poisson_power` for arrays."""
+    mu0, ratio, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (mu0, ratio, alpha)))
+    ok = mu0 > 0
+    mu = np.where(ok, mu0, 1.0)
+    c = sps.poisson.isf(alpha, mu) + 1
+    for _ in range(3):  # settle c onto the smallest count whose upper tail is <= alpha
+        c = np.where((c > 0) & (sps.poisson.sf(c - 2, mu) <= alpha), c - 1, c)
+        c = np.where(sps.poisson.sf(c - 1, mu) > alpha, c + 1, c)
+    return np.where(ok, sps.poisson.sf(c - 1, mu * ratio), 0.0)
+
+
 def poisson_power(mu0: float, ratio: float, alpha: float) -> float:
     """Power of the exact one-sided Poisson test of mean mu0 against mean ratio * mu0.
 
@@ -328,11 +349,14 @@ def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int
         observed, props, statistic="pearson", pvalue="auto", seed=seed, draws=draws,
         levels=decision_levels(j.limits for j in jobs))
     codes = tuple(table.categories)
-    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes) for i in range(len(jobs))]
+    powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
+                          observed.sum(axis=1), [j.limits.alarm_level for j in jobs])
+    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]))
+            for i in range(len(jobs))]
 
 
 def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props: np.ndarray,
-                 codes: tuple[str, ...]) -> Finding:
+                 codes: tuple[str, ...], power: float) -> Finding:
     limits = job.limits
     n = int(observed.sum())
     expected = np.asarray(_attr(result, "expected", i), dtype=float)
@@ -359,7 +383,6 @@ def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props:
         return Finding(verdict=NOT_TESTED,
                        reason=str(_attr(result, "method_reason", i) or "not tested"), **common)
     dof = int(_attr(result, "dof", i))
-    power = chisq_power(limits.min_effect_w, dof, n, limits.alarm_level)
     enough = power >= limits.power
     return Finding(
         verdict=TESTED if enough else TOO_LITTLE_DATA,
@@ -458,8 +481,11 @@ def _between(table: CountTable, limits: Any, seed: int) -> Finding:
         return Finding(kind=KIND_BETWEEN, line=None, verdict=NOT_TESTED, n=n, details=details,
                        reason="fewer than 2 lines or 2 categories with defects this shift")
     sub = np.ascontiguousarray(table.counts[np.ix_(rows, cols)], dtype=np.int64)
-    g = qstats.compare_groups(sub, statistic="pearson", pvalue="auto", seed=seed,
+    expected = np.outer(sub.sum(axis=1), sub.sum(axis=0)) / n
+    mode = _mode_for(expected)
+    g = qstats.compare_groups(sub, statistic="pearson", pvalue=mode, seed=seed,
                               **_mc_options(limits))
+    reason = _large_reason(expected) if mode == "asymptotic" else str(g.method_reason)
     r, c = sub.shape
     dof = int(g.dof)
     w_floor = limits.min_effect_v * math.sqrt(min(r, c) - 1)
@@ -475,11 +501,34 @@ def _between(table: CountTable, limits: Any, seed: int) -> Finding:
         effect_floor=float(limits.min_effect_v),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
         power=power, power_needed=float(limits.power),
-        method=str(g.method), method_reason=str(g.method_reason),
+        method=str(g.method), method_reason=reason,
         mc_se=_opt_float(g.pvalue_se), min_expected=_opt_float(g.min_expected),
         categories=tuple(table.categories[j] for j in cols),
         details=details,
     )
+
+
+# Tables of lines take the asymptotic p-value when Cochran's rule holds (every expected count
+# >= 1 and at most 20% of them below 5; Cochran 1954, as in Agresti 2007, sec. 2.4.7): with
+# hundreds of lines these tables hold tens of thousands of defects, where the chi-square
+# approximation is accurate and a Monte Carlo refinement of a 500 x 12 table costs seconds
+# (common practice, no source). Tables that fail the rule keep the ``auto`` p-value.
+
+
+def cochran_ok(expected: np.ndarray) -> bool:
+    """Cochran's rule on an array of expected counts."""
+    e = np.asarray(expected, dtype=float).ravel()
+    return bool(e.size and e.min() >= 1.0 and (e < 5.0).mean() <= 0.2)
+
+
+def _mode_for(expected: np.ndarray) -> str:
+    return "asymptotic" if cochran_ok(expected) else "auto"
+
+
+def _large_reason(expected: np.ndarray) -> str:
+    e = np.asarray(expected, dtype=float)
+    return (f"asymptotic chi-square: Cochran's rule holds (smallest expected count "
+            f"{e.min():.1f}, {100 * (e < 5).mean():.0f}% below 5)")
 
 
 def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
@@ -488,27 +537,35 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
         why = "fewer than 2 lines or 2 categories with defects this shift"
         return [Finding(kind=KIND_VS_REST, line=ln, verdict=NOT_TESTED, reason=why,
                         n=int(counts[i].sum())) for i, ln in enumerate(table.lines)]
+    col = counts.sum(axis=0)
+    total = col.sum()
+    share = col[col > 0] / total
+    rows_n = counts.sum(axis=1)
+    pair_e = [np.outer([n_i, total - n_i], share) for n_i in rows_n]  # 2 x c' expected counts
+    big = None
     try:
-        res = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="auto", seed=seed,
-                                          **_mc_options(limits))
-        return [_contained(KIND_VS_REST, ln, None,
-                           lambda i=i: _vs_rest_finding(table, counts, i, res, i, limits))
-                for i, ln in enumerate(table.lines)]
+        big = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="asymptotic",
+                                          seed=seed)
     except Exception:
         log.warning("line-vs-rest tests failed together; retrying line by line")
+    powers = chisq_powers(limits.min_effect_v, max(int((col > 0).sum()) - 1, 0), total,
+                          limits.alarm_level)
     out = []
     for i, line in enumerate(table.lines):
         def one(i: int = i) -> Finding:
-            pair = np.stack([counts[i], counts.sum(axis=0) - counts[i]])
+            if big is not None and rows_n[i] > 0 and cochran_ok(pair_e[i]):
+                f = _vs_rest_finding(table, counts, i, big, i, limits, float(powers))
+                return dataclasses.replace(f, method_reason=_large_reason(pair_e[i]))
+            pair = np.stack([counts[i], col - counts[i]])
             res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
                                               seed=seed, **_mc_options(limits))
-            return _vs_rest_finding(table, counts, i, res, 0, limits)
+            return _vs_rest_finding(table, counts, i, res, 0, limits, float(powers))
         out.append(_contained(KIND_VS_REST, line, None, one))
     return out
 
 
 def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r: int,
-                     limits: Any) -> Finding:
+                     limits: Any, power: float) -> Finding:
     line = table.lines[i]
     mine = counts[i]
     col = counts.sum(axis=0)
@@ -520,7 +577,6 @@ def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r:
     rest = (col - mine)[cols]
     total = int(col.sum())
     dof = int(res.dof[r])
-    power = chisq_power(limits.min_effect_v, dof, total, limits.alarm_level)
     enough = power >= limits.power
     expected = np.asarray(res.expected[r], dtype=float)[cols]
     residuals = np.asarray(res.adjusted_residuals[r], dtype=float)[cols]
@@ -552,9 +608,11 @@ def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r:
 
 
 def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | None,
-                 limits: Any) -> Finding | None:
+                 limits: Any, *, power: float | None = None, pvalue: float | None = None
+                 ) -> Finding | None:
     """Defects per inspected unit against the baseline rate; None when there is nothing to test
-    (no baseline rate, or units inspected unknown)."""
+    (no baseline rate, or units inspected unknown). ``power``/``pvalue`` may be passed in when
+    computed for many lines at once."""
     if baseline is None or baseline.rate is None or not math.isfinite(units):
         return None
     common = {"kind": KIND_RATE, "line": line, "baseline_version_id": baseline.version_id,
@@ -566,16 +624,18 @@ def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | 
         return Finding(verdict=NOT_TESTED, reason="baseline rate is 0: nothing to compare with",
                        **common)
     ratio = (defects / units) / float(baseline.rate)
-    power = poisson_power(mu0, limits.min_rate_ratio, limits.alarm_level)
+    if power is None:
+        power = poisson_power(mu0, limits.min_rate_ratio, limits.alarm_level)
+    if pvalue is None:
+        pvalue = float(qstats.rate_test(int(defects), float(units), float(baseline.rate)).pvalue)
     enough = power >= limits.power
     reason = (f"power {power:.2f} to see a rate ratio >= {limits.min_rate_ratio:g} "
               f"with {units:g} units" if enough else
               f"too little data to tell: power {power:.2f} < {limits.power:.2f} to see a rate "
               f"ratio >= {limits.min_rate_ratio:g} with {units:g} units")
-    test = qstats.rate_test(int(defects), float(units), float(baseline.rate))
     return Finding(
         verdict=TESTED if enough else TOO_LITTLE_DATA, reason=reason,
-        statistic=float(defects), pvalue=float(test.pvalue),
+        statistic=float(defects), pvalue=float(pvalue),
         effect_size=float(ratio), effect_name="rate ratio",
         effect_floor=float(limits.min_rate_ratio),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
@@ -590,16 +650,34 @@ def rate_finding(line: str, defects: int, units: float, baseline: BaselineRef | 
 
 def rate_lines(table: CountTable, baselines: Mapping[str, BaselineRef | None],
                thresholds: Any) -> list[Finding]:
-    out = []
+    """Rate findings for the lines with units inspected and a baseline rate (p-values and
+    power for all of them in one call each)."""
     totals = table.counts.sum(axis=1)
+    units = np.asarray(table.units, dtype=float)
+    jobs = []
     for i, line in enumerate(table.lines):
         b = baselines.get(line)
-        f = _contained(KIND_RATE, line, b.version_id if b else None,
-                       lambda i=i, line=line, b=b: rate_finding(
-                           line, int(totals[i]), float(table.units[i]), b, thresholds_for(thresholds, b)))
-        if f is not None:
-            out.append(f)
-    return out
+        if b is not None and b.rate is not None and math.isfinite(units[i]):
+            jobs.append((i, line, b, thresholds_for(thresholds, b)))
+    if not jobs:
+        return []
+    live = np.array([units[i] > 0 and b.rate > 0 for i, _, b, _ in jobs])
+    mu0 = np.array([units[i] * b.rate for i, _, b, _ in jobs])
+    powers = poisson_powers(np.where(live, mu0, 0.0), [t.min_rate_ratio for *_, t in jobs],
+                            [t.alarm_level for *_, t in jobs])
+    pvalues = np.full(len(jobs), np.nan)
+    if live.any():
+        idx = np.flatnonzero(live)
+        test = qstats.rate_test(totals[[jobs[k][0] for k in idx]], units[[jobs[k][0] for k in idx]],
+                                np.array([jobs[k][2].rate for k in idx], dtype=float))
+        pvalues[idx] = np.asarray(test.pvalue, dtype=float)
+    out = []
+    for k, (i, line, b, limits) in enumerate(jobs):
+        extra = {"power": float(powers[k]), "pvalue": float(pvalues[k])} if live[k] else {}
+        out.append(_contained(KIND_RATE, line, b.version_id, lambda i=i, line=line, b=b,
+                              limits=limits, extra=extra: rate_finding(
+                                  line, int(totals[i]), float(units[i]), b, limits, **extra)))
+    return [f for f in out if f is not None]
 
 
 # ---------------------------------------------------------------------------------------

@@ -133,17 +133,18 @@ def adjust(pvalues: Sequence[float], method: str) -> list[float]:
     return [float(x) for x in np.asarray(qstats.adjust_pvalues(p, method=method))]
 
 
-def severity_of(f: Finding) -> str | None:
-    """alarm / watch / None for a finding whose adjusted p-value is set."""
+def severity_of(f: Finding, adjusted_p: float | None = None) -> str | None:
+    """alarm / watch / None for a finding (its adjusted p-value, or ``adjusted_p``)."""
     if f.verdict == ev.IMPOSSIBLE:
         return ALARM
-    if not f.testable or f.adjusted_pvalue is None or f.effect_size is None:
+    p = f.adjusted_pvalue if adjusted_p is None else adjusted_p
+    if not f.testable or p is None or f.effect_size is None:
         return None
     if f.effect_floor is not None and not f.effect_size >= f.effect_floor:
         return None
-    if f.adjusted_pvalue < f.alarm_level:
+    if p < f.alarm_level:
         return ALARM
-    if f.adjusted_pvalue < f.watch_level:
+    if p < f.watch_level:
         return WATCH
     return None
 
@@ -155,25 +156,29 @@ def judge(findings: Sequence[Finding], method: str) -> tuple[Finding, ...]:
         [i for i, f in enumerate(out) if f.testable and f.kind in FAMILY_KINDS],
         [i for i, f in enumerate(out) if f.testable and f.kind == ev.KIND_VS_REST],
     )
+    adjusted: dict[int, float] = {}
     for family in families:
-        adjusted = adjust([out[i].pvalue for i in family], method)  # type: ignore[misc]
-        for i, a in zip(family, adjusted, strict=True):
-            out[i] = dataclasses.replace(out[i], adjusted_pvalue=min(1.0, a))
+        values = adjust([out[i].pvalue for i in family], method)  # type: ignore[misc]
+        adjusted.update((i, min(1.0, a)) for i, a in zip(family, values, strict=True))
     for i, f in enumerate(out):
         if f.verdict == ev.IMPOSSIBLE:
             out[i] = dataclasses.replace(f, severity=ALARM)
-        elif f.testable and f.adjusted_pvalue is not None:
-            sev = severity_of(f)
-            verdict = sev or (ev.TOO_LITTLE_DATA if f.verdict == ev.TOO_LITTLE_DATA else IN_CONTROL)
-            reason = f.reason if sev or verdict == ev.TOO_LITTLE_DATA else _in_control_reason(f)
-            out[i] = dataclasses.replace(f, severity=sev, verdict=verdict, reason=reason)
+        elif i in adjusted:
+            out[i] = _judged(f, adjusted[i])
     return tuple(out)
 
 
-def _in_control_reason(f: Finding) -> str:
-    assert f.adjusted_pvalue is not None
-    if f.adjusted_pvalue < f.watch_level and f.effect_floor is not None:
-        return (f"adjusted p {f.adjusted_pvalue:.3g} is small but {f.effect_name} "
+def _judged(f: Finding, adjusted_p: float) -> Finding:
+    sev = severity_of(f, adjusted_p)
+    verdict = sev or (ev.TOO_LITTLE_DATA if f.verdict == ev.TOO_LITTLE_DATA else IN_CONTROL)
+    reason = f.reason if sev or verdict == ev.TOO_LITTLE_DATA else _in_control_reason(f, adjusted_p)
+    return dataclasses.replace(f, adjusted_pvalue=adjusted_p, severity=sev, verdict=verdict,
+                               reason=reason)
+
+
+def _in_control_reason(f: Finding, adjusted_p: float) -> str:
+    if adjusted_p < f.watch_level and f.effect_floor is not None:
+        return (f"adjusted p {adjusted_p:.3g} is small but {f.effect_name} "
                 f"{f.effect_size:.3f} < {f.effect_floor:g}: too small to matter")
     return f.reason
 

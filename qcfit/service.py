@@ -154,6 +154,11 @@ def sync_versions(engine: Any, config: Any, *, now: dt.datetime, os_user: str = 
 
 def _clean(value: Any) -> Any:
     """JSON-safe: non-finite floats -> None, numpy scalars -> Python, tuples -> lists."""
+    kind = type(value)
+    if kind is float:
+        return value if math.isfinite(value) else None
+    if kind is str or kind is int or kind is bool or value is None:
+        return value
     if isinstance(value, float | np.floating):
         v = float(value)
         return v if math.isfinite(v) else None
@@ -166,9 +171,13 @@ def _clean(value: Any) -> Any:
     return value
 
 
+def _floats(values: Sequence[float]) -> list[float | None]:
+    return [float(v) if math.isfinite(v) else None for v in values]
+
+
 def finding_row(f: ev.Finding) -> dict[str, Any]:
     """A finding as a ``finding`` table row (reason, figures and words go into ``details``)."""
-    details = {
+    details = _clean({
         "reason": f.reason,
         "severity": f.severity,
         "effect_name": f.effect_name,
@@ -177,13 +186,9 @@ def finding_row(f: ev.Finding) -> dict[str, Any]:
         "watch_level": f.watch_level,
         "power_needed": f.power_needed,
         "mc_se": f.mc_se,
-        "categories": list(f.categories),
-        "observed": list(f.observed),
-        "expected": list(f.expected),
-        "adjusted_residuals": list(f.adjusted_residuals),
-        "extra": dict(f.details),
-    }
-    return _clean({
+        "extra": f.details,
+    })
+    row = _clean({
         "kind": f.kind,
         "line": f.line,
         "baseline_version_id": f.baseline_version_id,
@@ -199,8 +204,13 @@ def finding_row(f: ev.Finding) -> dict[str, Any]:
         "min_expected": f.min_expected,
         "power": f.power,
         "top_categories": [c.as_json() for c in f.top_categories],
-        "details": details,
     })
+    details["categories"] = list(f.categories)
+    details["observed"] = _floats(f.observed)
+    details["expected"] = _floats(f.expected)
+    details["adjusted_residuals"] = _floats(f.adjusted_residuals)
+    row["details"] = details
+    return row
 
 
 _CROSSING_VERDICTS = frozenset({policy.WATCH, policy.ALARM, ev.IMPOSSIBLE})
