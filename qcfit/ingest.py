@@ -554,10 +554,10 @@ def pull(
     if skip_bad and rejects is None:
         raise InvalidArgumentError("rejects", "a pull with skip_bad needs a rejects file path")
     since_text = since.astimezone(dt.UTC).strftime("%Y-%m-%d %H:%M:%S")
-    columns, rows = fetch_source_rows(source.url, source.query, {"since": since_text})
+    columns, rows, bound = fetch_source_rows(source.url, source.query, {"since": since_text})
     data = render_rows(columns, rows)
     label = f"[source] query result ({_shown(source.url)})"
-    binds_since = ":since" in source.query
+    binds_since = "since" in bound
     common = dict(kind="pull", source=label, audit_source=f"pull {source.kind}: {_shown(source.url)}",
                   who=_Who(now, os_user, host), skip_bad=skip_bad,
                   rejects=Path(rejects) if rejects else None,

@@ -435,8 +435,8 @@ def shift_table(conn: Connection, shift_row_id: int, lines: Sequence[str], categ
 # --- pulling from another database --------------------------------------------------------
 
 
-def fetch_source_rows(url: str, query: str, params: Mapping[str, Any]) -> tuple[list[str], list[tuple]]:
-    """Run ``query`` on the database at ``url``; return (column names, rows).
+def fetch_source_rows(url: str, query: str, params: Mapping[str, Any]) -> tuple[list[str], list[tuple], set[str]]:
+    """Run ``query`` on the database at ``url``; return (column names, rows, names bound).
 
     Only the bound parameters the query names (``:since``) are passed. The connection is
     read-only where the driver allows (SQLite files are opened with ``mode=ro``).
@@ -473,7 +473,7 @@ def fetch_source_rows(url: str, query: str, params: Mapping[str, Any]) -> tuple[
         raise InputFileError(f"[source] query on {shown}", reason=f"the query failed: {detail}") from exc
     finally:
         engine.dispose()
-    return columns, rows
+    return columns, rows, set(bound)
 
 
 def _shown_url(url: str) -> str:
