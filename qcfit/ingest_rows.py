@@ -24,7 +24,9 @@ Events (``timestamp,line,category[,quantity]``):
   row; one that occurs twice (autumn change) is a bad row unless ``ambiguous`` is
   ``"earlier"`` or ``"later"`` (the first or second occurrence);
 * an event later than the load time plus :data:`CLOCK_SKEW` is a bad row (a wrong date or
-  offset), and so is one that falls in no shift (between shifts, or a non-production day);
+  offset), and so is one before :data:`EARLIEST` (1970: a typo such as year 0226, or a
+  spreadsheet's zero date) or one that falls in no shift (between shifts, or a
+  non-production day);
 * the key is (instant, line, category): a second row with the same key is a bad row
   (write the total in ``quantity``);
 * ``quantity`` is optional (default 1); when the column is there, every cell needs a value.
@@ -32,7 +34,8 @@ Events (``timestamp,line,category[,quantity]``):
 Counts (``shift,line,category,count[,units_inspected]``):
 
 * ``shift`` is a shift id, ``YYYY-MM-DD_NAME`` (the plant-local date the shift starts on
-  and a shift name of the config), and the shift must have started by the load time;
+  and a shift name of the config, not a non-production day); the shift must have started
+  by the load time and not before :data:`EARLIEST`;
 * the key is (shift, line, category); a second row with the same key is a bad row;
 * ``units_inspected`` (optional) is the units inspected on that line in that shift; it may
   be left empty (unknown), and all non-empty cells of one shift and line must agree.
@@ -56,6 +59,7 @@ from qcfit.model import ShiftInstance
 
 MAX_COUNT = 10**9
 CLOCK_SKEW = dt.timedelta(minutes=15)
+EARLIEST = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)  # older: a typo ("0226") or a spreadsheet epoch
 EVENT_COLUMNS = ("timestamp", "line", "category")
 EVENT_OPTIONAL = ("quantity",)
 COUNT_COLUMNS = ("shift", "line", "category", "count")
@@ -481,7 +485,12 @@ def validate_events(
         lambda i: f"timestamp {ts_text[i]!r} is later than the time of loading "
         f"({now.astimezone(dt.UTC):%Y-%m-%d %H:%M} UTC); check the date and the offset",
     )
-    placed = ok_ts & ~future
+    too_old = ok_ts & (utc < _utc64(EARLIEST))
+    problems.add(
+        too_old,
+        lambda i: f"timestamp {ts_text[i]!r} is before {EARLIEST:%Y-%m-%d}; check the date",
+    )
+    placed = ok_ts & ~future & ~too_old
     instances, shift = _assign(calendar, utc, placed)
     nowhere = placed & (shift < 0)
     problems.add(
@@ -614,6 +623,8 @@ def _one_shift(text: str, calendar: Calendar, now: dt.datetime) -> tuple[str, Sh
         inst = calendar.instance(date, match.group(2))
     except QcfitError as exc:
         return f"shift {text!r}: {exc}", None
+    if inst.start < EARLIEST:
+        return f"shift {text!r} is before {EARLIEST:%Y-%m-%d}; check the date", None
     if inst.start > now:
         return f"shift {text!r} has not started yet (it starts {inst.start.isoformat()})", None
     return "", inst

@@ -105,6 +105,7 @@ def test_codes_with_surrounding_spaces_are_accepted_and_said(config, calendar):
         ("2026-02-30 09:15,L1,SCR,1", "timestamp '2026-02-30 09:15' is not a valid date and time"),
         ("2026-01-04 09:15,L1,SCR,1",  # a Sunday: non-production day in the test plant
          "timestamp '2026-01-04 09:15' falls in no shift of the calendar (between shifts or on a non-production day)"),
+        ("1899-12-30 09:00,L1,SCR,1", "timestamp '1899-12-30 09:00' is before 1970-01-01; check the date"),
         ("2026-12-01T00:16:00Z,L1,SCR,1",
          "timestamp '2026-12-01T00:16:00Z' is later than the time of loading (2026-12-01 00:00 UTC); check the date and the offset"),
     ],
@@ -234,6 +235,7 @@ def test_counts_with_units(config, calendar):
         ("05.01.2026_A,L1,SCR,1,", "shift '05.01.2026_A' is not a shift id (start date and shift name, e.g. 2026-01-05_A)"),
         ("2026-02-30_A,L1,SCR,1,", "shift '2026-02-30_A' is not a shift id (start date and shift name, e.g. 2026-01-05_A)"),
         ("2026-12-01_A,L1,SCR,1,", "shift '2026-12-01_A' has not started yet (it starts 2026-12-01T06:00:00-06:00)"),
+        ("0226-01-05_A,L1,SCR,1,", "shift '0226-01-05_A' is before 1970-01-01; check the date"),
         ("2026-01-05_A,L1,SCR,-3,", "count '-3' is negative"),
         ("2026-01-05_A,L1,SCR,2.5,", "count '2.5' is not a whole number"),
         ("2026-01-05_A,L1,SCR,1000000000000,",
