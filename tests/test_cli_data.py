@@ -195,3 +195,14 @@ def test_pull_without_source_section(plant_store):
 def test_help(args):
     result = CliRunner().invoke(main, [*args, "--help"])
     assert result.exit_code == 0 and "Usage:" in result.output
+
+
+def test_failure_late_in_the_load_leaves_nothing(plant_store, tmp_path):
+    """The rejects file is written inside the load's transaction: when it cannot be written,
+    the events, counts, shifts and audit row written before it are rolled back."""
+    before = plant_store.dump()
+    path = put(tmp_path, "e.csv", GOOD + "2026-01-05 07:00,L9,SCR,1\n")
+    target = tmp_path / "no-such-dir" / "rejects.csv"
+    result = run(plant_store, "load", "events", str(path), "--skip-bad", "--rejects", str(target))
+    assert (result.exit_code, result.stderr) == (2, f"Error: --rejects: cannot write {target}: No such file or directory\n")
+    assert plant_store.dump() == before
