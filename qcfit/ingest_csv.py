@@ -167,7 +167,7 @@ def _read_fast(text: str, source: str, required, optional, notes: list[str]) -> 
         frame = _whole_body(body, columns)
         if frame is not None:
             line_nos = np.arange(2, 2 + len(frame), dtype=np.int64)
-            return _finish(source, columns, frame, line_nos, [], notes, text)
+            return _finish(source, columns, frame, line_nos, [], notes, text, 1)
     return _read_by_lines(text, source, required, optional, notes)
 
 
@@ -228,7 +228,7 @@ def _read_by_lines(text: str, source: str, required, optional, notes: list[str])
     if len(frame) != int(keep.sum()):  # the parser disagreed with the line split: be exact
         return _read_with_csv_module(text, source, required, optional, notes)
     _note_blank(notes, int(blank.sum()))
-    return _finish(source, columns, frame, line_nos[keep], bad, notes, text)
+    return _finish(source, columns, frame, line_nos[keep], bad, notes, text, first + 1)
 
 
 def _read_with_csv_module(text: str, source: str, required, optional, notes: list[str]) -> RawTable:
@@ -238,7 +238,7 @@ def _read_with_csv_module(text: str, source: str, required, optional, notes: lis
     line_nos: list[int] = []
     bad: list[BadRow] = []
     blank = 0
-    start = 1
+    start = header_line = 1
     while True:
         try:
             record = next(reader)
@@ -252,6 +252,7 @@ def _read_with_csv_module(text: str, source: str, required, optional, notes: lis
             blank += 1
         elif columns is None:
             columns = _header(record, start, source, required, optional)
+            header_line = start
         elif len(record) != len(columns):
             bad.append(BadRow(start, f"expected {len(columns)} fields, found {len(record)}"))
         else:
@@ -266,7 +267,7 @@ def _read_with_csv_module(text: str, source: str, required, optional, notes: lis
     else:
         frame = _empty_frame(columns)
     _note_blank(notes, blank)
-    return _finish(source, columns, frame, np.asarray(line_nos, dtype=np.int64), bad, notes, text)
+    return _finish(source, columns, frame, np.asarray(line_nos, dtype=np.int64), bad, notes, text, header_line)
 
 
 def _empty_frame(columns: Sequence[str]) -> pd.DataFrame:
@@ -278,9 +279,9 @@ def _note_blank(notes: list[str], blank: int) -> None:
         notes.append(f"{blank} blank line(s) ignored")
 
 
-def _finish(source, columns, frame, line_nos, bad, notes, text) -> RawTable:
+def _finish(source, columns, frame, line_nos, bad, notes, text, header_line: int) -> RawTable:
     if len(frame) == 0 and not bad:
-        raise InputFileError(source, reason="the file has a header but no data rows")
+        raise InputFileError(source, reason=f"the file has a header (line {header_line}) but no data rows")
     line_nos = np.asarray(line_nos, dtype=np.int64)
     line_nos.setflags(write=False)
     frame = frame.reset_index(drop=True)

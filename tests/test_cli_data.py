@@ -72,7 +72,7 @@ def test_bad_event_files_are_rejected_whole(plant_store, tmp_path, content, rows
     "content,reason",
     [
         pytest.param(b"", "the file is empty (expected a header line and data rows)", id="empty"),
-        pytest.param(HEADER, "the file has a header but no data rows", id="header-only"),
+        pytest.param(HEADER, "the file has a header (line 1) but no data rows", id="header-only"),
         pytest.param("timestamp,line\n2026-01-05 07:00,L1\n",
                      "line 1 (header): missing column(s) 'category'; expected columns timestamp,line,category[,quantity]",
                      id="missing-column"),

@@ -65,7 +65,7 @@ def test_empty_file_is_rejected(data):
 def test_header_only_is_rejected(data):
     with pytest.raises(InputFileError) as err:
         read(data)
-    assert str(err.value) == "f.csv: the file has a header but no data rows"
+    assert str(err.value) == "f.csv: the file has a header (line 1) but no data rows"
 
 
 @pytest.mark.parametrize(
@@ -162,3 +162,11 @@ def test_csv_module_path_matches_a_csv_writer_round_trip():
     t = read(buf.getvalue().encode())
     assert t.frame.to_numpy().tolist() == rows
     assert t.line_nos.tolist() == [2, 3]
+
+
+def test_header_after_blank_lines_is_named_by_its_line():
+    with pytest.raises(InputFileError) as err:
+        read(b"\n\ntimestamp,line,category\n")
+    assert str(err.value) == "f.csv: the file has a header (line 3) but no data rows"
+    t = read(b"\n \ntimestamp,line,category\nx,L1,SCR\n")
+    assert t.line_nos.tolist() == [4] and t.notes == ("2 blank line(s) ignored",)
