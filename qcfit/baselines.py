@@ -59,6 +59,7 @@ DEFAULT_CONFIDENCE = 0.95
 DEFAULT_OUTLIER_LEVEL = 0.01  # adjusted p below this (and the effect at its floor) flags a shift
 DEFAULT_MAX_ROUNDS = 5  # exclusion rounds with --exclude-outliers
 DEFAULT_PERMUTATIONS = 999  # change-point scan
+DEFAULT_MIN_CHANGE_W = 0.10  # lasting change in the window that makes it unstable
 DEFAULT_MIN_SHIFTS = 100  # shorter windows get the false-alarm warning (see ARL_FIGURES)
 SISON_GLAZ_MIN_K = 7  # Sison & Glaz (1995, JASA 90:366-369) designed their method for k >= 7
 RESIDUAL_NOTE = 2.0  # |adjusted residual| named in a reason: common practice, no source
@@ -134,7 +135,11 @@ class FitSettings:
     below ``outlier_level`` AND its effect reaches the floor that an alarm needs
     (``min_effect_w`` for the mix, ``min_rate_ratio`` either way for the rate). The power check
     asks whether a chi-square test at level ``alpha`` on the window's defects detects a mix
-    change of Cohen's w = ``min_effect_w`` with probability ``power``.
+    change of Cohen's w = ``min_effect_w`` with probability ``power``. The change-point scan
+    calls the window unstable when its permutation p-value is below ``outlier_level`` and the
+    mix after the split differs from the mix before by at least ``min_change_w``: a lasting
+    change matters at a smaller size than one shift can show (default 0.10, Cohen's "small"
+    effect: Cohen, Statistical Power Analysis, 2nd ed. 1988, ch. 7).
     """
 
     method: IntervalMethod = "sison-glaz"
@@ -144,6 +149,7 @@ class FitSettings:
     outlier_level: float = DEFAULT_OUTLIER_LEVEL
     adjust: Literal["bh", "holm", "by", "none"] = "bh"
     min_effect_w: float = 0.10
+    min_change_w: float = DEFAULT_MIN_CHANGE_W
     min_rate_ratio: float = 1.25
     alpha: float = 0.01
     power: float = 0.80
@@ -576,7 +582,7 @@ def _change_point(win: _Window, rows: np.ndarray) -> ChangePointCheck | None:
         statistic=stat, pvalue=float(pvalue), permutations=s.permutations, seed=s.seed,
         split_shift_id=win.ids[rows[best + 1]], before=tuple(map(float, pb)),
         after=tuple(map(float, pa)), effect_size=w,
-        stable=not (pvalue < s.outlier_level and w >= s.min_effect_w),
+        stable=not (pvalue < s.outlier_level and w >= s.min_change_w),
     )
 
 
