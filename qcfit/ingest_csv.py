@@ -227,7 +227,7 @@ def _read_by_lines(text: str, source: str, required, optional, notes: list[str])
     frame = _parse(io.StringIO("\n".join(kept.tolist())), columns) if len(kept) else _empty_frame(columns)
     if len(frame) != int(keep.sum()):  # the parser disagreed with the line split: be exact
         return _read_with_csv_module(text, source, required, optional, notes)
-    _note_blank(notes, int(blank.sum()))
+    _note_blank(notes, int(blank.sum()) + first)  # blank lines before the header too
     return _finish(source, columns, frame, line_nos[keep], bad, notes, text, first + 1)
 
 
