@@ -241,13 +241,15 @@ def crossed(f: Finding) -> bool:
 
 def _figures(f: Finding, names: Mapping[str, str], vs_rest: Sequence[Finding]) -> dict[str, Any]:
     lines = [r.line for r in vs_rest]
+    # between lines: the categories of the line that differs most from the rest
+    cats = f.top_categories or (vs_rest[0].top_categories if vs_rest else ())
     return {
         "severity": f.severity or ALARM,
         "baseline_version_id": f.baseline_version_id,
         "pvalue": f.pvalue,
         "adjusted_pvalue": f.adjusted_pvalue,
         "effect_size": f.effect_size,
-        "categories": f.top_categories,
+        "categories": cats,
         "summary": describe(f, names, vs_rest),
         "details": finding_story(f) | ({"lines_differing": lines} if lines else {}),
     }

@@ -46,7 +46,7 @@ from qcfit.errors import BaselineError, InvalidArgumentError
 from qcfit.model import BaselineRef, CountTable, ShiftInstance
 from qcfit.store import evaluations as esql
 from qcfit.store.baselines import sync_baseline_versions
-from qcfit.store.engine import from_utc_naive, read_tx, to_utc_naive, write_tx
+from qcfit.store.engine import from_utc_naive, read_tx, run_write, to_utc_naive, write_tx
 from qcfit.store.shifts import ensure_shifts, shift_row
 
 log = logging.getLogger(__name__)
@@ -251,7 +251,8 @@ def _evaluation_row(config: Any, shift_row_id: int, status: str, seed: int, star
 def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
             seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
     names = dict(config.categories)
-    with write_tx(engine) as conn:
+
+    def work(conn: Any) -> tuple[Any, Any, int, int | None]:
         row_id = ensure_shifts(conn, [shift])[shift.id]
         active = alarmlog.active_alarms(conn, row_id)
         decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
@@ -262,6 +263,10 @@ def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[e
         esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
         applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
                                            shift_start_utc=to_utc_naive(shift.start), now=now)
+        return decided, applied, eval_id, old
+
+    # one write transaction; retried (from scratch) if the store stays locked
+    decided, applied, eval_id, old = run_write(engine, work)
     verdicts = Counter(f.verdict for f in decided.findings)
     return EvaluationSummary(
         shift_id=shift.id, evaluation_id=eval_id, status=OK, seed=seed, superseded_id=old,

@@ -98,6 +98,7 @@ def test_alarms_json_has_the_agreed_fields(cli):
     between = [row for row in rows if row["kind"] == "between-lines"]
     assert [row["line"] for row in mix] == ["L1"]
     assert between and all(row["line"] is None for row in between)
+    assert between[0]["categories"][0]["code"] == "FL"  # named from the line that differs
     m = mix[0]
     assert (m["shift_date"], m["shift_name"]) == ("2026-01-06", "A")
     assert m["shift_start"] == "2026-01-06T06:00:00-06:00"  # plant time, America/Chicago

@@ -247,6 +247,7 @@ def test_between_lines_alarm_names_the_differing_line():
     assert d.kind == ev.KIND_BETWEEN and d.line is None
     assert d.summary == "lines differ (V 0.30); L3: flash share 2.5x rest (adj. residual +5.2)"
     assert d.details["lines_differing"] == ["L3"]
+    assert [c.code for c in d.categories] == ["FL"]  # from the line that differs
 
 
 def test_rate_words():
