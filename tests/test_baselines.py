@@ -519,3 +519,37 @@ def test_goodman_option_and_json_form_and_determinism():
     data = json.loads(text)
     assert data["proportions"]["by_category"]["SCR"]["lower"] == a.proportions.lower[0]
     assert set(data) >= {"verdict", "excluded", "standing_out", "homogeneity", "rate", "power"}
+
+
+def test_evaluations_record_the_baseline_version_in_force_at_each_shift(tmp_path, plant_config_text):
+    """Through the service: two shifts either side of L1's baseline change are tested against
+    different versions, and each finding row names the version it used."""
+    from sqlalchemy import select
+
+    from qcfit.service import evaluate_shift
+    from qcfit.store.schema import evaluation, finding, shift
+
+    config = _config(plant_config_text + CHANGE_BASELINES)
+    engine = make_engine(f"sqlite:///{tmp_path / 'plant.sqlite'}")
+    init_store(engine, config, os_user="tester", now=NOW)
+    rows = [(sid, ln, c, n) for sid in ("2026-02-28_C", "2026-03-02_A") for ln in ("L1", "L2")
+            for c, n in zip(CATS, (60, 50, 30, 24, 20, 16), strict=True)]
+    _put_counts(engine, config, rows)
+    cal = ShiftCalendar.from_config(config)
+    now = dt.datetime(2026, 3, 3, tzinfo=dt.UTC)
+    for sid in ("2026-02-28_C", "2026-03-02_A"):
+        summary = evaluate_shift(engine, config, cal.from_id(sid), now=now)
+        assert summary.status == "ok", summary
+    versions = _sync(engine, config)
+    by_name = {spec.name: versions[spec.content_hash] for spec in config.baselines}
+    with read_tx(engine) as conn:
+        used = conn.execute(
+            select(shift.c.shift_date, finding.c.line, finding.c.baseline_version_id)
+            .join(evaluation, evaluation.c.id == finding.c.evaluation_id)
+            .join(shift, shift.c.id == evaluation.c.shift_id)
+            .where(finding.c.kind == "baseline")).all()
+    got = {(r.shift_date.isoformat(), r.line): r.baseline_version_id for r in used}
+    assert got[("2026-02-28", "L1")] == by_name["l1-winter"]
+    assert got[("2026-03-02", "L1")] == by_name["l1-spring"]
+    assert got[("2026-02-28", "L2")] == got[("2026-03-02", "L2")] == by_name["plant"]
+    engine.dispose()
