@@ -342,7 +342,8 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
     shift_row = _rowid_lookup(batch.instances, used, ids)[ev["shift"].to_numpy()]
     ev = ev.assign(shift_id=shift_row)
     existing = read_events(conn, ids.values())
-    ev, conflict_bad = _without_counted_lines(conn, ev, existing, batch.instances, ids, row_numbers)
+    cells = count_cells(conn, ids.values())
+    ev, conflict_bad = _without_counted_lines(cells, ev, existing, ids, row_numbers)
     if conflict_bad:
         bad = sorted(bad + conflict_bad, key=lambda b: b.line_no)
         _stop_if_bad(source, bad, len(ev), skip_bad)
@@ -357,7 +358,8 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
     corrections = _restated_cells(changes, restated)
     record_corrections(conn, load_id, corrections)
     rejects_path = _write_rejects(rejects, table, bad, row_numbers=row_numbers) if bad else None
-    inserted = len(totals) - len(changes)
+    stored_cells = set(zip(cells["shift_id"].tolist(), cells["line"].tolist(), cells["category"].tolist(), strict=True))
+    inserted = sum(k not in stored_cells for k in zip(totals["shift_id"].tolist(), totals["line"].tolist(), totals["category"].tolist(), strict=True))
     update_load(conn, load_id, rows_accepted=len(ev), rows_rejected=len(bad),
                 corrections=len(corrections), note=_note_text(notes, rejects_path))
     shift_ids = tuple(sorted(batch.instances[int(i)].id for i in np.unique(ev["shift"].to_numpy())))
@@ -371,9 +373,9 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
     )
 
 
-def _without_counted_lines(conn, ev: pd.DataFrame, existing: pd.DataFrame, instances, ids, row_numbers) -> tuple[pd.DataFrame, list[BadRow]]:
-    """Events for a shift x line whose counts came from a counts file are bad rows."""
-    cells = count_cells(conn, ids.values())
+def _without_counted_lines(cells: pd.DataFrame, ev: pd.DataFrame, existing: pd.DataFrame, ids, row_numbers) -> tuple[pd.DataFrame, list[BadRow]]:
+    """Events for a shift x line whose stored counts have no events (they came from a counts
+    file, or another system wrote them) are bad rows."""
     if len(cells) == 0:
         return ev, []
     with_events = set(zip(existing["shift_id"], existing["line"], strict=True))

@@ -92,7 +92,7 @@ def test_two_files_for_one_shift_add_up_and_overlap_does_not_double(plant_store,
     load_events_file(plant_store.engine, plant_store.config, a, now=NOW, **WHO)
     report = load_events_file(plant_store.engine, plant_store.config, b, now=NOW, **WHO)
     assert (report.events_added, report.events_unchanged, report.events_restated) == (2, 1, 0)
-    assert report.corrections == 0
+    assert (report.corrections, report.cells_written) == (0, 2)  # SCR changed, DNT new
     assert cells(plant_store) == {("2026-01-05_A", "L1", "SCR"): 3, ("2026-01-05_A", "L1", "DNT"): 1}
     assert query(plant_store, "SELECT count(*) FROM defect_event") == [(4,)]
     assert query(plant_store, "SELECT count(*) FROM count_correction") == [(0,)]
