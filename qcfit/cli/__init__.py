@@ -27,6 +27,7 @@ COMMAND_MODULES: tuple[str, ...] = (
     "qcfit.cli.evaluate",
     "qcfit.cli.alarms",
     "qcfit.cli.service",
+    "qcfit.cli.report",
 )
 
 DEFAULT_CONFIG_NAME = "qcfit.toml"
