@@ -59,6 +59,7 @@ DEFAULT_CONFIDENCE = 0.95
 DEFAULT_OUTLIER_LEVEL = 0.01  # adjusted p below this (and the effect at its floor) flags a shift
 DEFAULT_MAX_ROUNDS = 5  # exclusion rounds with --exclude-outliers
 DEFAULT_PERMUTATIONS = 999  # change-point scan
+HOMOGENEITY_DRAWS = 2000  # Monte Carlo tables for the shifts x categories test (sparse windows)
 DEFAULT_MIN_CHANGE_W = 0.10  # lasting change in the window that makes it unstable
 DEFAULT_MIN_SHIFTS = 100  # shorter windows get the false-alarm warning (see ARL_FIGURES)
 SISON_GLAZ_MIN_K = 7  # Sison & Glaz (1995, JASA 90:366-369) designed their method for k >= 7
@@ -526,7 +527,10 @@ def _homogeneity(win: _Window, rows: np.ndarray) -> HomogeneityCheck | None:
     table = table[:, table.sum(axis=0) > 0]
     if table.shape[1] < 2:
         return None
-    g = compare_groups(table, statistic="pearson", pvalue="auto", seed=win.settings.seed)
+    # a Phase I window can be a thousand shifts: fewer Monte Carlo tables, refined only near
+    # the one decision level (the stats engine adds draws when p is close to it)
+    g = compare_groups(table, statistic="pearson", pvalue="auto", seed=win.settings.seed,
+                       draws=HOMOGENEITY_DRAWS, levels=(win.settings.outlier_level,))
     dof = int(g.dof)
     stat = float(g.statistic)
     pvalue = float(g.pvalue)
