@@ -95,6 +95,7 @@ class StoreLock:
         while not self._try(timeout):
             if not wait:
                 holder = self.holder()
+                self._give_up()
                 raise AlreadyRunningError(str(holder) if holder else "another qcfit service")
             if pause.wait(poll_s):
                 return False
@@ -143,6 +144,9 @@ class StoreLock:
 
     def _release(self) -> None:
         raise NotImplementedError  # pragma: no cover
+
+    def _give_up(self) -> None:
+        """Drop what a failed attempt left open (nothing for a file lock)."""
 
 
 class _FileStoreLock(StoreLock):
@@ -255,6 +259,9 @@ class _PgAdvisoryLock(StoreLock):
         if self._own is not None:
             self._own.dispose()
         self._own = self._conn = None
+
+    def _give_up(self) -> None:
+        self._disconnect()
 
     def _lost_reason(self) -> str | None:
         if self._conn is None:

@@ -101,6 +101,13 @@ def test_second_instance_is_refused_with_the_holder(engine: sa.Engine, holder: H
     assert who is not None and (who.pid, who.host) == (holder.proc.pid, "pc-holder")
     if store_info(engine).dialect == "sqlite":
         assert who.since == NOW
+    else:  # the refused attempt left no session of its own behind
+        with engine.connect() as conn:
+            mine = conn.execute(
+                sa.text("SELECT count(*) FROM pg_stat_activity WHERE application_name LIKE :me"),
+                {"me": f"qcfit-service pid={os.getpid()} %"},
+            ).scalar_one()
+        assert mine == 0
 
 
 def test_restart_after_kill_9_succeeds(engine: sa.Engine, holder: Holder) -> None:
