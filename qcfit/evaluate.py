@@ -23,6 +23,12 @@ at the alarm level against the smallest effect that matters: power = P(chi2(df, 
 chi2_{1-alpha}(df)) (Cohen 1988, ch. 7). For the rate test it is the exact Poisson power
 against ``min_rate_ratio``.
 
+p-values: each line's fit uses the ``auto`` p-value of :func:`qcfit.stats.fit_to_baseline`
+where it can change a decision (see :func:`fit_lines`: sparse tables, and tests whose
+multiplicity-adjusted p-value is near an alarm or watch level); elsewhere the asymptotic p-value,
+which no refinement could move across a level. Tables of lines use the asymptotic p-value when
+Cochran's rule holds, ``auto`` otherwise.
+
 An exception in one line's test is caught and becomes a ``fault`` finding for that line; the
 other lines are still evaluated. Sequential-chart findings come from elsewhere and are passed in
 as ``extra`` (they are appended unchanged).
@@ -342,17 +348,23 @@ def decision_levels(limits: Iterable[Any]) -> tuple[float, ...]:
     return tuple(sorted(out))
 
 
-def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int) -> list[Finding]:
+def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int, *,
+               mode: str = "auto", levels: tuple[float, ...] | None = None,
+               reason: str | None = None) -> list[Finding]:
     observed = np.stack([table.counts[j.index] for j in jobs]).astype(np.int64)
     props = np.stack([j.proportions for j in jobs])
     result = qstats.fit_to_baseline(
-        observed, props, statistic="pearson", pvalue="auto", seed=seed, draws=draws,
-        levels=decision_levels(j.limits for j in jobs))
+        observed, props, statistic="pearson", pvalue=mode, seed=seed, draws=draws,
+        levels=levels or decision_levels(j.limits for j in jobs))
     codes = tuple(table.categories)
     powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
                           observed.sum(axis=1), [j.limits.alarm_level for j in jobs])
-    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]))
-            for i in range(len(jobs))]
+    out = [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]))
+           for i in range(len(jobs))]
+    if reason is not None:
+        out = [dataclasses.replace(f, method_reason=reason) if f.method == "asymptotic" else f
+               for f in out]
+    return out
 
 
 def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props: np.ndarray,
@@ -419,10 +431,21 @@ def _power_reason(enough: bool, power: float, needed: float, name: str, floor: f
 
 
 def fit_lines(
-    table: CountTable, baselines: Mapping[str, BaselineRef | None], thresholds: Any, *, seed: int
+    table: CountTable, baselines: Mapping[str, BaselineRef | None], thresholds: Any, *, seed: int,
+    family: Sequence[float] | None = None,
 ) -> list[Finding]:
-    """Baseline findings for every line of ``table`` (one vectorised call for all lines;
-    line by line if that call fails, so one bad line becomes one fault finding)."""
+    """Baseline findings for every line of ``table`` (vectorised over lines; line by line if
+    that fails, so one bad line becomes one fault finding).
+
+    ``family``: the other p-values of the shift's multiple-testing family (rate, between lines).
+    When given, ``auto`` p-values are computed where they can change a decision: first the
+    asymptotic p-value of every line; the lines whose table fails Cochran's rule, or whose
+    multiplicity-adjusted p-value is within a factor 3 of an alarm or watch level, are then
+    computed with ``auto`` refined near the raw p-value that maps onto that level (for BH at
+    rank r of m: level x r / m). The rest keep the asymptotic p-value, which no refinement
+    could move across a decision level. Without ``family`` every line gets ``auto`` at the
+    nominal levels.
+    """
     out: dict[int, Finding] = {}
     jobs: list[_GofJob] = []
     for i, line in enumerate(table.lines):
@@ -441,7 +464,11 @@ def fit_lines(
     gof_seed = derive_seed(seed, KIND_BASELINE)
     draws = int(getattr(thresholds, "mc_draws", 10_000))
     try:
-        found = _gof_batch(table, jobs, gof_seed, draws) if jobs else []
+        if family is None:
+            found = _gof_batch(table, jobs, gof_seed, draws) if jobs else []
+        else:
+            found = _gof_two_pass(table, jobs, gof_seed, draws, family,
+                                  getattr(thresholds, "multiple_testing", "bh"))
     except Exception:
         log.warning("baseline test of %d lines failed together; retrying line by line", len(jobs))
         found = [
@@ -452,6 +479,49 @@ def fit_lines(
     for job, finding in zip(jobs, found, strict=True):
         out[job.index] = finding
     return [out[i] for i in sorted(out)]
+
+
+FAR_REASON = ("asymptotic chi-square: Cochran's rule holds and the multiplicity-adjusted "
+              "p-value is far from every decision level")
+NEAR_FACTOR = 3.0  # refine when the adjusted p is within this factor of a level (as stats does)
+
+
+def _adjusted(p: np.ndarray, method: str) -> np.ndarray:
+    if method == "none" or p.size <= 1:
+        return p.copy()
+    return np.asarray(qstats.adjust_pvalues(p, method=method), dtype=float)
+
+
+def _gof_two_pass(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int,
+                  family: Sequence[float], method: str) -> list[Finding]:
+    if not jobs:
+        return []
+    first = _gof_batch(table, jobs, seed, draws, mode="asymptotic", reason=FAR_REASON)
+    own = np.array([f.pvalue if f.testable else np.nan for f in first], dtype=float)
+    others = np.array([p for p in family if p is not None and math.isfinite(p)], dtype=float)
+    mine = np.flatnonzero(np.isfinite(own))
+    adj = np.full(len(jobs), np.nan)
+    if mine.size:
+        adj[mine] = _adjusted(np.concatenate([own[mine], others]), method)[: mine.size]
+    refine, levels = [], set()
+    for i, (job, f) in enumerate(zip(jobs, first, strict=True)):
+        if not f.testable:
+            continue
+        lv = (float(job.limits.alarm_level), float(job.limits.watch_level))
+        near = [a for a in lv if a / NEAR_FACTOR <= adj[i] <= a * NEAR_FACTOR]
+        sparse = not cochran_ok(np.asarray(f.expected)[job.proportions > 0])
+        if near or sparse:
+            refine.append(i)
+            scale = own[i] / adj[i] if adj[i] > 0 else 1.0
+            levels.update(min(0.5, a * scale) for a in lv)
+    if not refine:
+        return first
+    better = _gof_batch(table, [jobs[i] for i in refine], seed, draws, mode="auto",
+                        levels=tuple(sorted(levels)))
+    out = list(first)
+    for i, f in zip(refine, better, strict=True):
+        out[i] = f
+    return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -701,12 +771,11 @@ def evaluate_table(
     as they are. Order: baseline per line, rate per line, between-lines, line-vs-rest, extra.
     """
     _check_table(table)
-    findings: list[Finding] = []
-    findings += fit_lines(table, baselines, thresholds, seed=seed)
-    findings += rate_lines(table, baselines, thresholds)
-    findings += compare_lines(table, thresholds, seed=seed)
-    findings += list(extra)
-    return tuple(findings)
+    rates = rate_lines(table, baselines, thresholds)
+    lines = compare_lines(table, thresholds, seed=seed)
+    family = [f.pvalue for f in rates + lines[:1] if f.testable]
+    fits = fit_lines(table, baselines, thresholds, seed=seed, family=family)
+    return tuple(fits + rates + lines + list(extra))
 
 
 def _check_table(table: CountTable) -> None:

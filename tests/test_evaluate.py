@@ -240,3 +240,29 @@ def test_negative_counts_are_refused_naming_the_argument():
     bad = CountTable(SHIFT, ("L1",), CATS, np.array([[1, -1, 0, 0, 0, 0]]), np.array([np.nan]))
     with pytest.raises(ValueError, match=r"table.counts: has a negative count at \[0, 1\]"):
         ev.evaluate_table(bad, {"L1": BASE}, Thresholds(), seed=1)
+
+
+def test_refining_only_near_decisions_gives_the_same_verdicts_as_refining_everywhere():
+    # 8 seeded shifts of 8 lines, some lines with a moderate flash shift, n ~ 60..300
+    from qcfit import policy
+
+    rng = np.random.default_rng(20260105)
+    shifted = np.array([0.26, 0.22, 0.24, 0.11, 0.10, 0.07])
+    t = Thresholds()
+    crossings = 0
+    for shift_no in range(8):
+        rows = {f"L{i}": [int(x) for x in rng.multinomial(int(rng.integers(60, 300)),
+                                                          shifted if i % 3 == 0 else PROPS)]
+                for i in range(8)}
+        tab = table(rows)
+        base = {ln: BASE for ln in rows}
+        quick = ev.evaluate_table(tab, base, t, seed=shift_no)
+        full = (ev.fit_lines(tab, base, t, seed=shift_no)
+                + [f for f in quick if f.kind != ev.KIND_BASELINE])
+        verdicts = [(f.kind, f.line, f.verdict) for f in policy.judge(quick, "bh")]
+        assert verdicts == [(f.kind, f.line, f.verdict) for f in policy.judge(full, "bh")]
+        crossings += sum(v[2] in ("watch", "alarm") for v in verdicts)
+        for f in quick:
+            if f.kind == ev.KIND_BASELINE and f.method == "asymptotic":
+                assert f.method_reason == ev.FAR_REASON
+    assert crossings > 0  # the comparison covered decisions, not only quiet shifts
