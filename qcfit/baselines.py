@@ -48,6 +48,7 @@ __all__ = [
     "baseline_in_force",
     "baselines_in_force",
     "block_proportions",
+    "cohen_w",
     "fit_study",
     "version_diff",
 ]
@@ -809,6 +810,19 @@ def _plain(obj: Any) -> dict[str, Any]:
     return out
 
 
+# --------------------------------------------------------------------------- comparisons
+
+
+def cohen_w(p: Sequence[float], p0: Sequence[float]) -> float:
+    """Cohen's w of mix ``p`` against mix ``p0``: sqrt(sum (p - p0)^2 / p0) over p0 > 0
+    (Cohen, Statistical Power Analysis for the Behavioral Sciences, 2nd ed. 1988, ch. 7)."""
+    a, b = np.asarray(p, dtype=float), np.asarray(p0, dtype=float)
+    if a.shape != b.shape:
+        raise InvalidArgumentError("p", f"has {a.size} shares for {b.size} in p0")
+    keep = b > 0
+    return float(np.sqrt(np.sum((a[keep] - b[keep]) ** 2 / b[keep])))
+
+
 # --------------------------------------------------------------------------- version diff
 
 
@@ -826,8 +840,8 @@ def version_diff(old: Any, new: Any) -> dict[str, Any]:
         relative = None if change is None or not a else change / float(a)
         rows.append({"code": code, "old": a, "new": b, "change": change, "relative": relative})
     same = set(old.proportions) == set(new.proportions) and all(v > 0 for v in old.proportions.values())
-    w = (math.sqrt(sum((new.proportions[c] - old.proportions[c]) ** 2 / old.proportions[c]
-                       for c in old.proportions)) if same else None)
+    w = (cohen_w([new.proportions[c] for c in old.proportions], list(old.proportions.values()))
+         if same else None)
     return {
         "old_id": old.id, "new_id": new.id, "categories": rows, "cohen_w": w,
         "rate": {"old": old.rate, "new": new.rate},

@@ -272,6 +272,10 @@ def test_demo_healthy_line_fit_covers_the_generators_mix(demo):
     for code, c in data["proportions"]["by_category"].items():
         assert c["lower"] <= float(truth[f"true_share_{code}"]) <= c["upper"], code
     assert data["rate"]["lower"] <= float(truth["true_rate"]) <= data["rate"]["upper"]
+    # the plant's approved baseline carries the generator's true mix: the fit is close to it
+    current = data["current_baseline"]
+    assert current["name"] == "housings" and current["cohen_w"] < 0.03
+    assert current["rate_ratio"] == pytest.approx(1.0, abs=0.02)
 
 
 @pytest.mark.slow

@@ -226,6 +226,23 @@ def _window(engine: Any, config: Any, lines: list[str], since: dt.date, until: d
     return win
 
 
+def _current(config: Any, lines: list[str], at: dt.date, study: Any) -> dict[str, Any] | None:
+    """How far the fitted mix and rate are from the baseline in force for the (first) line
+    on the window's last day; None when no baseline applies there."""
+    from qcfit.baselines import cohen_w
+    from qcfit.config import baseline_for
+
+    spec = baseline_for(config, next(iter(config.lines)) if lines == ["*"] else lines[0], at)
+    if spec is None:
+        return None
+    old = [float(spec.proportions[c]) for c in study.categories]
+    ratio = None
+    if spec.rate is not None and study.rate is not None:
+        ratio = study.rate.rate / float(spec.rate)
+    return {"name": spec.name, "effective": spec.effective.isoformat(),
+            "cohen_w": cohen_w(study.proportions.proportions, old), "rate_ratio": ratio}
+
+
 def _default_name(lines: list[str], effective: dt.date) -> str:
     who = "all-lines" if lines == ["*"] else "-".join(lines)
     return f"{who}-{effective.isoformat()}"
@@ -281,14 +298,22 @@ def fit_cmd(ctx: click.Context, line: tuple[str, ...], lines: tuple[str, ...], s
 
         written = add_baseline_block(a.config_path, block, name=name, now=now,
                                      expected_hash=config.hash)
+    current = _current(config, chosen, last, study)
     if fmt == "json":
         out = {"lines": chosen, "from": first.isoformat(), "to": last.isoformat(), "name": name,
-               "effective": when.isoformat(), **study.to_dict(), "toml": block,
+               "effective": when.isoformat(), **study.to_dict(), "current_baseline": current,
+               "toml": block,
                "written": None if written is None else
                {"path": str(written.path), "backup": str(written.backup)}}
         _echo_json(out)
         return
     click.echo(_study_text(study, config, chosen, (first, last)))
+    if current is not None:
+        rate = "" if current["rate_ratio"] is None else \
+            f"; fitted rate / its rate = {current['rate_ratio']:.3f}"
+        click.echo(f"Against the baseline in force on {last} ({current['name']}, effective "
+                   f"{current['effective']}): Cohen's w of the fitted mix = {current['cohen_w']:.4f}"
+                   f"{rate}")
     click.echo("")
     if written is None:
         click.echo(f"TOML block (paste it into {a.config_path.name}, or run again with --write):")
