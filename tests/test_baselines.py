@@ -553,3 +553,19 @@ def test_evaluations_record_the_baseline_version_in_force_at_each_shift(tmp_path
     assert got[("2026-03-02", "L1")] == by_name["l1-spring"]
     assert got[("2026-02-28", "L2")] == got[("2026-03-02", "L2")] == by_name["plant"]
     engine.dispose()
+
+
+@settings(max_examples=8, deadline=None)
+@given(seed=st.integers(0, 10**6), perm=st.permutations(range(6)))
+def test_relabelling_categories_relabels_the_estimates(seed, perm):
+    counts, units, ids = _window(seed=seed, m=12, mean_units=3000)
+    perm = list(perm)
+    a = fit_study(counts, units, shift_ids=ids, categories=CATS,
+                  settings=FitSettings(method="goodman", permutations=99))
+    b = fit_study(counts[:, perm], units, shift_ids=ids, categories=[CATS[i] for i in perm],
+                  settings=FitSettings(method="goodman", permutations=99))
+    for field in ("counts", "proportions", "lower", "upper"):
+        assert np.allclose(np.asarray(getattr(b.proportions, field)),
+                           np.asarray(getattr(a.proportions, field))[perm])
+    assert b.rate == a.rate and b.power == a.power
+    assert b.homogeneity.statistic == pytest.approx(a.homogeneity.statistic)
