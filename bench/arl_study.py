@@ -22,6 +22,9 @@ import numpy as np
 from qcfit.stats.sequential import Concern, make_design
 from qcfit.stats.sequential_calibration import (
     ArlCurve,
+    Traces,
+    _omnibus_limits,
+    bank_matrix,
     calibrate,
     ratio_arl,
     simulate_traces,
@@ -34,6 +37,7 @@ CHANGE_AT = 100  # first changed shift is 101
 SEED = 20261202
 MC1_K = 0.05  # reference value per defect (w / 2 for the w = 0.1 design)
 MCUSUM_K = 0.07  # best of 0.03-0.11 in a pilot run
+COMBO = "MCUSUM + bank (tried)"
 
 # direction vectors (sum 0); scaled to a given Cohen's w
 DIRECTIONS: dict[str, np.ndarray] = {
@@ -143,15 +147,23 @@ def alternatives() -> dict:
     return {"MC1 (tried)": mc1_traces, "MCUSUM (tried)": mcusum_traces}
 
 
-def _vector_cusum(p_after, change_at, paths, horizon, seed, kref, kind) -> np.ndarray:
+def _vector_cusum(p_after, change_at, paths, horizon, seed, kref, kind,
+                  bank: np.ndarray | None = None):
+    """Traces (horizon, paths) of MC1 or Crosier's MCUSUM; with ``bank`` (k, D) also the
+    bank's max on the same counts (returned as a second array)."""
     rng = np.random.default_rng(seed)
     sq = np.sqrt(P0)
     c = np.zeros((paths, P0.size))
     nn = np.zeros(paths)
     out = np.empty((horizon, paths))
+    sb = np.zeros((paths, 0 if bank is None else bank.shape[1]))
+    out_b = np.zeros((horizon, paths))
     for t in range(horizon):
         p = P0 if (p_after is None or t < change_at) else p_after
         x = rng.multinomial(N, p, size=paths)
+        if bank is not None:
+            sb = np.maximum(0.0, sb + x @ bank)
+            out_b[t] = sb.max(axis=1)
         c += (x - N * P0) / sq
         norm = np.sqrt((c**2).sum(axis=1))
         if kind == "crosier":
@@ -164,7 +176,21 @@ def _vector_cusum(p_after, change_at, paths, horizon, seed, kref, kind) -> np.nd
         c[s <= 0] = 0.0
         nn[s <= 0] = 0.0
         out[t] = np.maximum(s, 0.0)
-    return out
+    return out if bank is None else (out, out_b)
+
+
+def mcusum_bank(p_after, change_at, paths, horizon, seed):
+    """Crosier MCUSUM and the pairwise bank on common counts: (mcusum, bank max) traces."""
+    bank = bank_matrix(make_design(P0, ewma_lambda=0.0, bank=True, bank_w=0.1), 0)
+    return _vector_cusum(p_after, change_at, paths, horizon, seed, MCUSUM_K, "crosier", bank)
+
+
+def calibrate_mcusum_bank(paths: int, seed: int) -> tuple[float, float]:
+    """Equal budget split between MCUSUM and bank, as calibrate() does for MEWMA and bank."""
+    mc, bk = mcusum_bank(None, 0, paths, int(ARL0), seed)
+    tr = Traces(ewma=mc, bank=bk, concerns=np.zeros(mc.shape + (0,)))
+    he, hb, *_ = _omnibus_limits(tr, ARL0, True, True)
+    return he, hb
 
 
 def delay(u: np.ndarray, change_at: int) -> tuple[float, float, int, int]:
@@ -200,6 +226,10 @@ def run_study(paths: int, cal_paths: int, seed: int = SEED, log=print) -> dict:
         h = ArlCurve.from_traces(fn(None, 0, cal_paths, int(ARL0), seed + 7 + a)).limit_for(ARL0)
         res["alt_h"][name] = h
         res["ic"][name] = ratio_arl(fn(None, 0, paths, int(2 * ARL0), seed + 17 + a) / h)
+    hm = calibrate_mcusum_bank(cal_paths, seed + 9)
+    res["alt_h"][COMBO] = hm
+    mc, bk = mcusum_bank(None, 0, paths, int(2 * ARL0), seed + 19)
+    res["ic"][COMBO] = ratio_arl(np.maximum(mc / hm[0], bk / hm[1]))
     log(f"in control done at {time.perf_counter() - t0:.1f} s")
     horizon = CHANGE_AT + 200
     for w in (0.1, 0.2):
@@ -217,6 +247,9 @@ def run_study(paths: int, cal_paths: int, seed: int = SEED, log=print) -> dict:
                 tr = fn(p1, CHANGE_AT, paths, horizon, seed + 5000 * (a + 1) + 1000 * si
                         + int(w * 100))
                 row[name] = delay(tr / res["alt_h"][name], CHANGE_AT)
+            mc, bk = mcusum_bank(p1, CHANGE_AT, paths, horizon, seed + 77_000 + 1000 * si
+                                 + int(w * 100))
+            row[COMBO] = delay(np.maximum(mc / hm[0], bk / hm[1]), CHANGE_AT)
             res["oc"][(w, dname)] = row
         log(f"w={w} done at {time.perf_counter() - t0:.1f} s")
     res["seconds"] = time.perf_counter() - t0
@@ -244,6 +277,8 @@ def markdown(res: dict, paths: int) -> str:
         elif name.startswith("tuned CUSUM"):
             j = list(DIRECTIONS).index(name.removeprefix("tuned CUSUM "))
             lim = f"{res['tuned_h'][j]:.3f}"
+        elif name == COMBO:
+            lim = " / ".join(f"{v:.3f}" for v in res["alt_h"][name])
         elif name in res["alt_h"]:
             lim = f"{res['alt_h'][name]:.3f}"
         else:
@@ -251,10 +286,11 @@ def markdown(res: dict, paths: int) -> str:
         ok = "yes" if abs(a / ARL0 - 1) <= 0.10 else "NO"
         lines.append(f"| {name} | {lim} | {a:.1f} | {se:.1f} | {ok} |")
     cols = ["X^2", "tuned CUSUM", "CUSUM tuned to cat1 -> cat5", "MEWMA 0.1", "MEWMA 0.2",
-            "bank of 30", "MC1 (tried)", "MCUSUM (tried)", "default (MEWMA 0.2 + bank)"]
+            "bank of 30", "MC1 (tried)", "MCUSUM (tried)", COMBO, "default (MEWMA 0.2 + bank)"]
     heads = ["per-shift X^2", "CUSUM tuned to this direction", "CUSUM tuned to cat1 -> cat5",
              "MEWMA lambda 0.1", "MEWMA lambda 0.2", "bank of 30 CUSUMs",
              f"tried: MC1 k {MC1_K}", f"tried: Crosier MCUSUM k {MCUSUM_K}",
+             "tried: MCUSUM + bank",
              "default: MEWMA 0.2 + bank", "default / tuned"]
     lines += ["", "### Out of control: mean shifts to signal, steady state (change at shift 101)",
               "", "| w | shift direction | " + " | ".join(heads) + " |",
@@ -280,10 +316,19 @@ def goal_check(res: dict) -> list[str]:
             continue
         tuned = row["tuned CUSUM"][0]
         for name in ("default (MEWMA 0.2 + bank)", "MEWMA 0.2", "bank of 30", "MC1 (tried)",
-                     "MCUSUM (tried)"):
+                     "MCUSUM (tried)", COMBO):
             worst[name] = max(worst.get(name, 0.0), row[name][0] / tuned)
         r = row["default (MEWMA 0.2 + bank)"][0] / tuned
         out.append(f"- {dname}: {r:.2f} ({'met' if r <= 1.5 else 'not met'})")
+    best = []
+    for (w, dname), row in res["oc"].items():
+        if w == 0.1:
+            gen = {k: v[0] for k, v in row.items() if k not in ("X^2", "tuned CUSUM")
+                   and not k.startswith("CUSUM tuned")}
+            name = min(gen, key=gen.get)
+            best.append(f"{dname} {gen[name] / row['tuned CUSUM'][0]:.2f} ({name})")
+    out += ["", "Best direction-free chart per direction (column minimum / tuned): "
+            + "; ".join(best) + "."]
     out.append("")
     out.append("Worst ratio over the directions: " + ", ".join(
         f"{k} {v:.2f}" for k, v in worst.items()) + ".")

@@ -10,6 +10,7 @@
 
 from __future__ import annotations
 
+import os
 import time
 from concurrent.futures import ProcessPoolExecutor
 
@@ -51,6 +52,7 @@ def _calibrate_part(args):
 def bench_calibration() -> list[dict]:
     designs = _designs()
     t0 = time.perf_counter()
+    c0 = time.process_time()
     serial = {}
     rel_se = 0.0
     for ki, d in enumerate(designs):
@@ -58,6 +60,7 @@ def bench_calibration() -> list[dict]:
         serial[ki] = cal.limits.bank.tolist()
         rel_se = max(rel_se, float(np.max(cal.omnibus_se / cal.omnibus_arl0)))
     t_serial = time.perf_counter() - t0
+    cpu_serial = time.process_time() - c0
     jobs = [(ki, list(range(h, 10, 2))) for ki in range(len(designs)) for h in (0, 1)]
     t0 = time.perf_counter()
     with ProcessPoolExecutor(max_workers=2) as ex:
@@ -67,7 +70,8 @@ def bench_calibration() -> list[dict]:
                                                                                strict=True))
     return [
         {"bench": "sequential", "case": "calibrate 50 lines k=6..10, 1 process",
-         "seconds": round(t_serial, 2), "max_rel_mc_se": round(rel_se, 3)},
+         "seconds": round(t_serial, 2), "cpu_seconds": round(cpu_serial, 2),
+         "max_rel_mc_se": round(rel_se, 3), "load_avg_1min": round(os.getloadavg()[0], 1)},
         {"bench": "sequential", "case": "calibrate 50 lines k=6..10, 2 processes",
          "seconds": round(t_par, 2), "target_seconds": 10.0, "met": t_par <= 10.0,
          "same_limits_as_serial": same},

@@ -9,7 +9,7 @@ transition matrix, the vector of ARLs from every start state is ``(I - Q)^{-1} 1
 * Integer increments (Bernoulli CUSUM with integer weights, Poisson CUSUM of Lucas 1985
   with integer reference value ``k`` and limit ``h``): the chain is exact.
 * Real increments (the multinomial LLR): each increment value's probability is split between
-  its two lattice neighbours (mean kept); with ``step ~ h / 600`` the ARL0 is within about 1-2%
+  its two lattice neighbours (mean kept); with ``step ~ h / 300`` the ARL0 is within about 1-2%
   of a 4x finer lattice (a finer step is a parameter).
 
 Also Siegmund's corrected-diffusion approximation (Siegmund 1985, "Sequential Analysis",
@@ -173,7 +173,7 @@ class MarkovCalibration:
 
 
 def calibrate_llr_cusum(p0: np.ndarray, weights: np.ndarray, n_profile, arl0: float, *,
-                        rng: np.random.Generator | None = None, points: int = 600,
+                        rng: np.random.Generator | None = None, points: int = 300,
                         ) -> MarkovCalibration:
     """Limit of one LLR CUSUM for in-control ARL ``arl0`` by the Brook-Evans chain.
 
