@@ -16,6 +16,7 @@ its supervisor restarts it.
 
 from __future__ import annotations
 
+import abc
 import datetime as dt
 import json
 import logging
@@ -67,7 +68,7 @@ class LockHolder:
         return f"{who} on {self.host or 'an unknown host'}{when} ({self.lock})"
 
 
-class StoreLock:
+class StoreLock(abc.ABC):
     """The service lock of one store; use :func:`store_lock` to make one."""
 
     def __init__(self, engine: Engine, *, now: dt.datetime | None, pid: int, host: str) -> None:
@@ -89,6 +90,8 @@ class StoreLock:
         """Take the lock. Held by another: AlreadyRunningError naming the holder, or with
         ``wait`` keep trying every ``poll_s`` seconds until it is free (True) or ``stop``
         is set (False)."""
+        if self._held:
+            return True
         pause = stop if stop is not None else threading.Event()
         # The first try waits a little: a status probe may hold the file lock for an instant.
         timeout = min(poll_s, DEFAULT_POLL_S)
@@ -111,6 +114,7 @@ class StoreLock:
         reason = self._lost_reason()
         if reason is not None:
             self._held = False
+            self._give_up()
             raise StoreError(f"lost the service lock on the store: {reason}")
 
     def release(self) -> None:
@@ -119,9 +123,9 @@ class StoreLock:
             self._held = False
             self._release()
 
+    @abc.abstractmethod
     def holder(self) -> LockHolder | None:
         """Who holds the lock now, or None when nobody does."""
-        raise NotImplementedError  # pragma: no cover - overridden
 
     @property
     def held(self) -> bool:
@@ -136,17 +140,21 @@ class StoreLock:
 
     # backend hooks ------------------------------------------------------------------------
 
+    @abc.abstractmethod
     def _try(self, timeout_s: float) -> bool:
-        raise NotImplementedError  # pragma: no cover
+        """One attempt, waiting at most ``timeout_s`` where the backend can."""
 
+    @abc.abstractmethod
     def _lost_reason(self) -> str | None:
-        raise NotImplementedError  # pragma: no cover
+        """Why the lock is no longer ours, or None while it is."""
 
+    @abc.abstractmethod
     def _release(self) -> None:
-        raise NotImplementedError  # pragma: no cover
+        """Give the lock up and clean up what :meth:`_try` made."""
 
+    @abc.abstractmethod
     def _give_up(self) -> None:
-        """Drop what a failed attempt left open (nothing for a file lock)."""
+        """Drop what a failed or lost attempt left open, touching nothing of another holder."""
 
 
 class _FileStoreLock(StoreLock):
@@ -192,6 +200,9 @@ class _FileStoreLock(StoreLock):
             self.holder_path.unlink(missing_ok=True)
         finally:
             self._lock.release(force=True)
+
+    def _give_up(self) -> None:
+        self._lock.release(force=True)
 
     def holder(self) -> LockHolder | None:
         probe = filelock.FileLock(str(self.lock_path))
