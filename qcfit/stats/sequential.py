@@ -314,7 +314,9 @@ def reset_lines(state: SequentialState, design: SequentialDesign,
     """Restart the charts of some lines; the other lines keep their values.
 
     Use on a baseline change (pass the design built on the new baseline) and on an
-    acknowledgement with "cause removed" (same design). Restarted lines get t = 0.
+    acknowledgement with "cause removed" (same design). Restarted lines get t = 0. The design
+    must keep the lines, k and the chart list; a line whose k changes joins another chart set
+    with :func:`init_state`.
     """
     idx = np.asarray(lines, dtype=int).reshape(-1)
     if idx.size and (idx.min() < 0 or idx.max() >= design.m):
@@ -359,14 +361,19 @@ def state_from_json(rows: Sequence[Mapping[str, Any]]) -> SequentialState:
     for r in rows:
         if r.get("format") != STATE_FORMAT:
             raise InvalidArgumentError("state", f"unknown state format {r.get('format')!r}")
-    st = SequentialState(**out)
-    m = st.t.shape[0]
-    k = st.ewma_z.shape[1] if st.ewma_z.ndim == 2 else -1
-    shapes_ok = (st.ewma_z.ndim == 2 and st.cusum_counts.ndim == 3 and st.bank_counts.ndim == 3
-                 and st.cusum_counts.shape[2] in (k, 0) and st.bank_counts.shape[2] in (3, 0))
-    if not shapes_ok or any(getattr(st, f.name).shape[0] != m for f in fields(SequentialState)):
+    m = out["t"].shape[0]
+    try:  # empty chart groups (no concerns, no bank) come back from JSON as (m, 0)
+        k = out["ewma_z"].shape[1]
+        c, d = out["cusum_s"].reshape(m, -1).shape[1], out["bank_s"].reshape(m, -1).shape[1]
+        for name, shape in (("cusum_s", (m, c)), ("cusum_zero", (m, c)),
+                            ("cusum_counts", (m, c, k)), ("bank_s", (m, d)),
+                            ("bank_zero", (m, d)), ("bank_counts", (m, d, 3))):
+            out[name] = _ro(out[name].reshape(shape))
+    except (ValueError, IndexError) as exc:
+        raise InvalidArgumentError("state", "inconsistent array shapes between fields") from exc
+    if out["ewma_z"].ndim != 2 or any(out[n].shape != (m,) for n in ("t", "ewma_v", "ewma_calm")):
         raise InvalidArgumentError("state", "inconsistent array shapes between fields")
-    return st
+    return SequentialState(**out)
 
 
 def _check_state(state: SequentialState, design: SequentialDesign) -> None:

@@ -174,6 +174,17 @@ def test_restart_through_json_resumes_bit_for_bit():
         assert np.array_equal(a.signal, b.signal)
 
 
+def test_round_trip_of_the_default_chart_set_without_concerns():
+    d = make_design(np.array([P0, P0[::-1]]))  # default: MEWMA + bank, no concern CUSUM
+    lim = make_limits(d, ewma=18.0, bank=7.8)
+    x = _stream(d, 8, 9)
+    full, _ = run(d, lim, x)
+    mid, _ = run(d, lim, x[:5])
+    back = state_from_json(json.loads(json.dumps(state_to_json(mid))))
+    _assert_same_state(mid, back)
+    _assert_same_state(full, run(d, lim, x[5:], state=back)[0])
+
+
 @settings(max_examples=25, deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), split=st.integers(0, 12))
 def test_round_trip_and_invariants_hold_for_any_stream(seed, split):
