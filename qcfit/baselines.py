@@ -27,8 +27,19 @@ import numpy as np
 from scipy import stats as sps
 from scipy.special import xlogy
 
+from qcfit.config import baseline_for
 from qcfit.errors import BaselineError, InvalidArgumentError
 from qcfit.model import BaselineRef, ShiftInstance
+from qcfit.stats import (
+    adjust_pvalues,
+    chisq_power,
+    compare_each_to_rest,
+    compare_groups,
+    detectable_effect,
+    multinomial_intervals,
+    poisson_rate_interval,
+    sample_size_for_power,
+)
 
 log = logging.getLogger(__name__)
 
@@ -92,8 +103,6 @@ def baseline_in_force(
     ``config.categories`` order. BaselineError (naming the baseline) when its content has no
     version yet.
     """
-    from qcfit.config import baseline_for
-
     spec = baseline_for(config, line, shift.date)
     if spec is None:
         return None
@@ -319,10 +328,10 @@ def fit_study(
     ``units``: float array (m,): units inspected per shift, NaN where unknown (or None);
     ``shift_ids``: the m shift ids naming the rows; ``categories``: the k category codes.
 
-    Each round pools the kept shifts and tests each shift's mix against the pooled shares
-    (Pearson X^2 by ``qcfit.stats.fit_to_baseline``, p-value ``auto``) and, with units, its
-    defect count against the pooled rate (exact two-sided Poisson test, twice the smaller
-    tail); p-values are adjusted across the round's shifts. With ``exclude_outliers`` flagged
+    Each round tests each kept shift's mix against the pooled rest of the kept shifts
+    (2 x k Pearson X^2 by ``qcfit.stats.compare_each_to_rest``, p-value ``auto``) and, with
+    units, its defect count against the pooled rate (exact two-sided Poisson test, twice the
+    smaller tail); p-values are adjusted across the round's shifts. With ``exclude_outliers`` flagged
     shifts are removed and the round repeated until none stand out or ``max_rounds`` rounds
     have removed shifts (then the shifts still standing out are listed, kept). On the kept
     shifts follow: shifts x categories homogeneity (``compare_groups``), a change-point scan,
@@ -350,6 +359,8 @@ def _validate(counts: Any, units: Any, shift_ids: Sequence[str], categories: Seq
         raise BaselineError("--from/--to", "the history window holds no shifts with data")
     if len(shift_ids) != m:
         raise InvalidArgumentError("shift_ids", f"has {len(shift_ids)} ids for {m} rows of counts")
+    if len(set(shift_ids)) != m:
+        raise InvalidArgumentError("shift_ids", "has a shift id twice")
     if len(categories) != k or k < 2:
         raise InvalidArgumentError("categories", f"needs one code per column (k = {k} >= 2)")
     bad = ~np.isfinite(arr) | (arr < 0) | (arr != np.round(arr))
@@ -407,8 +418,6 @@ def _flag_round(win: _Window, keep: np.ndarray, number: int, *, exclude: bool) -
 def _adjust(p: np.ndarray, method: str) -> np.ndarray:
     if method == "none" or len(p) < 2:
         return p.copy()
-    from qcfit.stats import adjust_pvalues
-
     return np.asarray(adjust_pvalues(p, method=method), dtype=float)
 
 
@@ -416,8 +425,6 @@ def _mix_flags(win: _Window, idx: np.ndarray, number: int) -> list[ShiftFlag]:
     """Each kept shift with defects against the pooled rest of the kept shifts (2 x k test of
     homogeneity, ``qcfit.stats.compare_each_to_rest``, p-value ``auto``); the effect is
     Cohen's w of the shift's mix against the rest's, w = sqrt(sum (p_j - r_j)^2 / r_j)."""
-    from qcfit.stats import compare_each_to_rest
-
     s = win.settings
     tested = idx[win.counts[idx].sum(axis=1) > 0]
     table = win.counts[tested]
@@ -520,8 +527,6 @@ def _summarise(win: _Window, keep: np.ndarray, flags: list[ShiftFlag],
 
 
 def _homogeneity(win: _Window, rows: np.ndarray) -> HomogeneityCheck | None:
-    from qcfit.stats import compare_groups
-
     if len(rows) < 2:
         return None
     table = win.counts[rows]
@@ -592,8 +597,6 @@ def _change_point(win: _Window, rows: np.ndarray) -> ChangePointCheck | None:
 
 
 def _proportions(win: _Window, kept: np.ndarray) -> ProportionEstimate:
-    from qcfit.stats import multinomial_intervals
-
     s = win.settings
     pooled = win.counts[kept].sum(axis=0)
     total = int(pooled.sum())
@@ -616,15 +619,11 @@ def _rate(win: _Window, kept: np.ndarray) -> RateEstimate | None:
         return None
     d = int(win.counts[known].sum())
     u = float(win.units[known].sum())
-    from qcfit.stats import poisson_rate_interval
-
     lower, upper = poisson_rate_interval(d, u, win.settings.confidence)
     return RateEstimate(d, u, len(known), d / u, lower, upper, win.settings.confidence)
 
 
 def _power(win: _Window, kept: np.ndarray) -> PowerCheck:
-    from qcfit.stats import chisq_power, detectable_effect, sample_size_for_power
-
     s = win.settings
     k = len(win.categories)
     dof = k - 1
