@@ -664,6 +664,7 @@ def _warnings(study: FitStudy, win: _Window) -> list[str]:
             f"the window holds {p.defects} defects; detecting a mix change of w = "
             f"{p.min_effect_w:g} with power {p.target_power:g} at level {p.alpha:g} needs "
             f"{p.defects_needed} (about {p.more_shifts} more shift(s) like these)")
+    out += _stability_warnings(study)
     if s.method == "sison-glaz" and len(win.categories) < SISON_GLAZ_MIN_K:
         out.append(f"Sison-Glaz intervals were designed for {SISON_GLAZ_MIN_K} or more categories;"
                    f" with {len(win.categories)} consider --method goodman")
@@ -679,6 +680,22 @@ def _warnings(study: FitStudy, win: _Window) -> list[str]:
         still = sum(1 for f in study.flags if not f.excluded)
         out.append(f"stopped after {s.max_rounds} exclusion rounds; {still} shift(s) still "
                    "stand out (the window may hold a lasting change rather than odd shifts)")
+    return out
+
+
+def _stability_warnings(study: FitStudy) -> list[str]:
+    """What to do about an unstable window (Phase I: investigate before fitting)."""
+    out = []
+    h, c = study.homogeneity, study.change_point
+    if c is not None and not c.stable:
+        date = c.split_shift_id.partition("_")[0]
+        out.append(f"the mix changed around shift {c.split_shift_id} (w = {c.effect_size:.3f}): "
+                   f"a baseline from the whole window mixes two processes; fit the part that is "
+                   f"in control (e.g. --from {date} if the change is the new normal)")
+    if h is not None and not h.stable:
+        out.append(f"the shifts vary more than one multinomial mix allows (X2/df = "
+                   f"{h.dispersion:.2f}, p = {_fmt_p(h.pvalue)}): per-shift alarms on this "
+                   "baseline will fire more often than configured until the cause is found")
     return out
 
 

@@ -295,3 +295,5 @@ def test_demo_slow_drift_is_found_as_a_lasting_change(demo):
     assert data["verdict"] == "not stable" and not cp["stable"]
     assert cp["split_shift_id"] in drift  # the split falls inside the drift
     assert not data["homogeneity"]["stable"]
+    assert any(w.startswith(f"the mix changed around shift {cp['split_shift_id']}")
+               for w in data["warnings"])

@@ -307,13 +307,7 @@ def fit_cmd(ctx: click.Context, line: tuple[str, ...], lines: tuple[str, ...], s
                {"path": str(written.path), "backup": str(written.backup)}}
         _echo_json(out)
         return
-    click.echo(_study_text(study, config, chosen, (first, last)))
-    if current is not None:
-        rate = "" if current["rate_ratio"] is None else \
-            f"; fitted rate / its rate = {current['rate_ratio']:.3f}"
-        click.echo(f"Against the baseline in force on {last} ({current['name']}, effective "
-                   f"{current['effective']}): Cohen's w of the fitted mix = {current['cohen_w']:.4f}"
-                   f"{rate}")
+    click.echo(_study_text(study, config, chosen, (first, last), current))
     click.echo("")
     if written is None:
         click.echo(f"TOML block (paste it into {a.config_path.name}, or run again with --write):")
@@ -329,13 +323,20 @@ def fit_cmd(ctx: click.Context, line: tuple[str, ...], lines: tuple[str, ...], s
 # --------------------------------------------------------------------------- text report
 
 
-def _study_text(study: Any, config: Any, lines: list[str], window: tuple[dt.date, dt.date]) -> str:
+def _study_text(study: Any, config: Any, lines: list[str], window: tuple[dt.date, dt.date],
+                current: dict[str, Any] | None) -> str:
     out = [f"Phase I fit of {', '.join(lines)} from {window[0]} to {window[1]}: "
            f"{len(study.window_shifts)} shifts in the window, {len(study.kept_shifts)} kept",
            f"Verdict: {study.verdict}", ""]
     out += _rounds_text(study)
     out += _stability_text(study)
     out += _estimates_text(study, config)
+    if current is not None:
+        rate = "" if current["rate_ratio"] is None else \
+            f"; fitted rate / its rate = {current['rate_ratio']:.3f}"
+        out.append(f"Against the baseline in force on {window[1]} ({current['name']}, effective "
+                   f"{current['effective']}): Cohen's w of the fitted mix = "
+                   f"{current['cohen_w']:.4f}{rate}")
     if study.warnings:
         out += ["", "Warnings:"] + [f"  - {w}" for w in study.warnings]
     return "\n".join(out)
