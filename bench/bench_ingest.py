@@ -11,7 +11,7 @@ How it is measured:
 * the fast path (:func:`qcfit.ingest.load_events_file` on a fresh SQLite store made by
   ``init_store``) runs in a child process: wall time of the load call, and the child's
   peak resident memory (``ru_maxrss``: the whole process, interpreter and libraries
-  included);
+  included); best of three runs, each on its own fresh store;
 * the naive path runs in another child on a fresh store: ``csv.DictReader``, one ORM object
   per event, a shift lookup and a count lookup per row, ``session.flush()`` after every row,
   one commit at the end (one transaction, like the fast path, so the ratio measures per-row
@@ -36,6 +36,7 @@ import pandas as pd
 
 N_EVENTS = 1_000_000
 NAIVE_ROWS = 20_000
+FAST_REPEATS = 3
 TARGET_SECONDS = 15.0
 TARGET_MB = 1024.0
 TARGET_RATIO = 20.0
@@ -216,29 +217,36 @@ def _children_maxrss_kb() -> int:
     return int(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)
 
 
-def run(n: int = N_EVENTS, naive_rows: int = NAIVE_ROWS) -> list[dict]:
-    """Both paths on the same generated file; one result row."""
+def run(n: int = N_EVENTS, naive_rows: int = NAIVE_ROWS, repeats: int = FAST_REPEATS) -> list[dict]:
+    """Both paths on the same generated file; one result row (fast path: best of ``repeats``
+    fresh-store runs, each in its own child, to damp other load on the machine)."""
     naive_rows = min(naive_rows, n)
     with tempfile.TemporaryDirectory(prefix="qcfit-bench-ingest-") as tmp:
         folder = Path(tmp)
         config_path, csv_path = write_inputs(folder, n)
         size_mb = csv_path.stat().st_size / 1e6
-        fast = _in_child("fast", str(config_path), str(csv_path), str(folder / "fast.sqlite"))
+        runs = [
+            _in_child("fast", str(config_path), str(csv_path), str(folder / f"fast{k}.sqlite"))
+            for k in range(max(1, repeats))
+        ]
+        fast = min(runs, key=lambda r: r["seconds"])
         naive = _in_child("naive", str(config_path), str(csv_path), str(folder / "naive.sqlite"), str(naive_rows))
     naive_full = naive["seconds"] / naive["rows"] * n
     naive_full_cpu = naive["cpu_seconds"] / naive["rows"] * n
     ratio = naive_full / fast["seconds"]
     load_avg = os.getloadavg()[0]
-    ok = fast["seconds"] <= TARGET_SECONDS and fast["peak_rss_mb"] <= TARGET_MB and ratio >= TARGET_RATIO
+    peak = max(r["peak_rss_mb"] for r in runs)
+    ok = fast["seconds"] <= TARGET_SECONDS and peak <= TARGET_MB and ratio >= TARGET_RATIO
     return [{
         "bench": "ingest_events_csv",
         "what": f"load {n:,} events from CSV ({size_mb:.0f} MB) into shift counts, SQLite store",
         "events": n,
         "seconds": round(fast["seconds"], 2),
+        "seconds_all_runs": [round(r["seconds"], 2) for r in runs],
         "cpu_seconds": round(fast["cpu_seconds"], 2),
         "target_seconds": TARGET_SECONDS,
         "events_per_second": round(n / fast["seconds"]),
-        "peak_rss_mb": round(fast["peak_rss_mb"], 1),
+        "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1),
         "target_mb": TARGET_MB,
         "count_cells": fast["cells"],
         "shifts": fast["shifts"],

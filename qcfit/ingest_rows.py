@@ -307,17 +307,19 @@ class _Stamps:
     def at(self, pos: np.ndarray) -> np.ndarray:
         """Code point at per-row position ``pos`` (0 where out of range)."""
         width = self.chars.shape[1]
-        inside = (pos >= 0) & (pos < width)
-        got = self.chars[np.arange(len(pos)), np.clip(pos, 0, width - 1)]
-        return np.where(inside, got, 0)
+        flat = np.arange(len(pos), dtype=np.int64) * width + np.clip(pos, 0, width - 1)
+        got = self.chars.reshape(-1)[flat] if len(pos) else np.zeros(0, dtype=np.uint32)
+        return np.where((pos >= 0) & (pos < width), got, 0)
 
 
 def _char_matrix(text: np.ndarray, length: np.ndarray) -> np.ndarray:
     n = len(text)
     usable = np.where(length <= _MAX_TS_LENGTH, text, "")
     fixed = usable.astype(str) if n else np.array([], dtype="U1")
-    width = max(fixed.dtype.itemsize // 4, _MIN_TS_LENGTH)
-    fixed = fixed.astype(f"U{width}")
+    width = fixed.dtype.itemsize // 4
+    if width < _MIN_TS_LENGTH:
+        width = _MIN_TS_LENGTH
+        fixed = fixed.astype(f"U{width}")
     return fixed.view(np.uint32).reshape(n, width)
 
 
@@ -351,10 +353,11 @@ def _iso_shape(st: _Stamps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     form3 = sign3 & ~form6 & ~form5 & d[2] & d[1]
     off_len = np.select([zulu, form6, form5, form3], [1, 6, 5, 3], 0)
     has_offset = off_len > 0
-    j = np.arange(c.shape[1])[None, :]
-    tail = (j >= _MIN_TS_LENGTH) & (j < (L - off_len)[:, None])
-    allowed = _is_digit(c) | (c == 58) | (c == 46)
-    ok &= ~(tail & ~allowed).any(axis=1)
+    rest = c[:, _MIN_TS_LENGTH:]  # what follows HH:MM
+    j = np.arange(_MIN_TS_LENGTH, c.shape[1])[None, :]
+    tail = j < (L - off_len)[:, None]
+    stray = tail & ~(_is_digit(rest) | (rest == 58) | (rest == 46))
+    ok &= ~stray.any(axis=1)
     minutes = _offset_minutes(st, L, off_len)
     return ok, has_offset, minutes
 
