@@ -10,6 +10,7 @@ file rules and :mod:`qcfit.ingest_rows` for the cell rules)::
     shift,line,category,count[,units_inspected]        # per-shift counts
     2026-01-05_A,L1,SCR,12,4800                         # shift id: local start date _ name
     2026-01-05_A,L1,DNT,0,4800                          # units repeated on each row of the line
+    2026-01-05_A,L2,SCR,0,5100                          # no defects: a 0 row still carries units
 
 Rules of a load (one call = one store transaction):
 
