@@ -27,6 +27,7 @@ import datetime as dt
 import logging
 import os
 import re
+import threading
 import weakref
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -101,11 +102,34 @@ def store_info(engine: Engine) -> StoreInfo:
 
 @contextmanager
 def write_tx(engine: Engine) -> Iterator[Connection]:
-    """One write transaction (``BEGIN IMMEDIATE`` on SQLite); commit on success, else rollback."""
-    with translate_errors(engine), engine.connect() as conn:
-        conn = conn.execution_options(**{BEGIN_OPTION: "IMMEDIATE"})
-        with conn.begin():
-            yield conn
+    """One write transaction (``BEGIN IMMEDIATE`` on SQLite); commit on success, else rollback.
+
+    A second write_tx on the same engine inside the first (same thread) is refused at once:
+    on SQLite it would wait for the first one's lock, which never comes. Pass ``conn`` down.
+    """
+    open_here = _open_writes()
+    if id(engine) in open_here:
+        raise StoreError(
+            "a write transaction is already open on this store in this thread; "
+            "pass its connection down instead of opening another"
+        )
+    open_here.add(id(engine))
+    try:
+        with translate_errors(engine), engine.connect() as conn:
+            conn = conn.execution_options(**{BEGIN_OPTION: "IMMEDIATE"})
+            with conn.begin():
+                yield conn
+    finally:
+        open_here.discard(id(engine))
+
+
+_THREAD = threading.local()
+
+
+def _open_writes() -> set[int]:
+    if not hasattr(_THREAD, "writes"):
+        _THREAD.writes = set()
+    return _THREAD.writes
 
 
 @contextmanager

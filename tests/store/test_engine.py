@@ -223,6 +223,22 @@ def test_lock_wait_is_bounded_on_every_backend(store_url: str) -> None:
     engine.dispose()
 
 
+def test_nested_write_tx_is_refused_at_once(tmp_path: Path) -> None:
+    # Would otherwise wait out the busy timeout on its own lock, then fail.
+    engine = make_engine(f"sqlite:///{tmp_path / 's.sqlite'}")
+    with write_tx(engine) as outer:
+        outer.exec_driver_sql("CREATE TABLE t (x INTEGER)")
+        with pytest.raises(StoreError, match="already open on this store in this thread"):
+            with write_tx(engine):
+                pass
+        outer.exec_driver_sql("INSERT INTO t VALUES (1)")
+    with write_tx(engine) as conn:  # and the guard is cleared afterwards
+        conn.exec_driver_sql("INSERT INTO t VALUES (2)")
+    with read_tx(engine) as conn:
+        assert conn.exec_driver_sql("SELECT count(*) FROM t").scalar_one() == 2
+    engine.dispose()
+
+
 def test_foreign_keys_are_enforced(migrated_engine: sa.Engine) -> None:
     with pytest.raises(StoreError, match="constraint violated"):
         with write_tx(migrated_engine) as conn:
