@@ -342,7 +342,7 @@ def _as_of_shift(a: AlarmItem, tests: Sequence[FindingView]) -> AlarmItem:
         return a
     return dataclasses.replace(
         a, severity=str(f.severity), adjusted_pvalue=f.adjusted_pvalue,
-        effect_size=f.effect_size, categories=f.top if f.top else a.categories)
+        effect_size=f.effect_size, categories=f.top)
 
 
 _ROLE_ORDER = {"new": 0, "continues": 1, "earlier": 2, "cleared": 3}

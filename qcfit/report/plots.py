@@ -95,7 +95,7 @@ def safe(text: object, limit: int = 28) -> str:
     s = "".join(ch if ch.isprintable() else " " for ch in str(text))
     if len(s) > limit:
         s = s[: limit - 1].rstrip() + "\u2026"
-    return s.replace("\\", "\\\\").replace("$", r"\$")
+    return s.replace("$", r"\$")
 
 
 def wrap(text: object, width: int, lines: int) -> str:
@@ -287,9 +287,12 @@ def residual_map(data: ReportData, lines: Sequence[str]) -> str:
                            left=1.75, right=0.75)
         ax = axes[0][0]
         shown = np.ma.masked_invalid(np.clip(mat, -RESIDUAL_CLIP, RESIDUAL_CLIP))
-        image = ax.imshow(shown, cmap=RESIDUAL_MAP, vmin=-RESIDUAL_CLIP, vmax=RESIDUAL_CLIP,
-                          aspect="auto", interpolation="nearest")
-        ax.set_facecolor("#f1f2f4")
+        ax.pcolormesh(np.arange(k + 1) - 0.5, np.arange(len(lines) + 1) - 0.5, shown,
+                              cmap=RESIDUAL_MAP, vmin=-RESIDUAL_CLIP, vmax=RESIDUAL_CLIP,
+                              edgecolors=PAPER, linewidth=0.8)
+        ax.set_xlim(-0.5, k - 0.5)
+        ax.set_ylim(len(lines) - 0.5, -0.5)
+        ax.set_facecolor("#eef0f2")
         for i in range(len(lines)):
             for j in range(k):
                 r = mat[i, j]
@@ -310,11 +313,28 @@ def residual_map(data: ReportData, lines: Sequence[str]) -> str:
             side.set_visible(False)
         box = ax.get_position()
         cax = fig.add_axes((box.x1 + 0.15 / WIDTH, box.y0, 0.1 / WIDTH, box.height))
-        bar = fig.colorbar(image, cax=cax)
-        bar.set_label("adjusted residual", fontsize=FONT - 1, labelpad=2)
-        bar.ax.tick_params(labelsize=FONT - 1.5, length=2)
-        bar.outline.set_visible(False)
+        _residual_key(cax)
         return to_svg(fig, "residuals", "Map of adjusted residuals, lines by categories")
+
+
+def _residual_key(cax) -> None:
+    """The residual colour scale as vector swatches (a colorbar would embed a bitmap)."""
+    edges = np.linspace(-RESIDUAL_CLIP, RESIDUAL_CLIP, 25)
+    mids = (edges[:-1] + edges[1:]) / 2
+    colours = RESIDUAL_MAP((mids + RESIDUAL_CLIP) / (2 * RESIDUAL_CLIP))
+    cax.bar(np.zeros(len(mids)), np.diff(edges), bottom=edges[:-1], width=1.0, color=colours,
+            linewidth=0, align="center")
+    cax.set_xlim(-0.5, 0.5)
+    cax.set_ylim(-RESIDUAL_CLIP, RESIDUAL_CLIP)
+    cax.set_xticks([])
+    cax.yaxis.tick_right()
+    cax.yaxis.set_label_position("right")
+    cax.set_yticks([-6, -4, -2, 0, 2, 4, 6])
+    cax.set_yticklabels(["\u2264\u22126", "\u22124", "\u22122", "0", "+2", "+4", "\u2265+6"])
+    cax.tick_params(labelsize=FONT - 1.5, length=2)
+    cax.set_ylabel("adjusted residual", fontsize=FONT - 1, labelpad=2)
+    for side in cax.spines.values():
+        side.set_visible(False)
 
 
 # --- over time: mix test p-value and effect size --------------------------------------------
@@ -458,7 +478,7 @@ def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> 
                 top = max(top, float(np.nanmax(np.r_[ratio, 0.0])) / 100)
                 if rank < SEQ_SHOWN:
                     ax.plot(x, ratio, color=SEQ_COLOURS[rank], linestyle=SEQ_STYLES[rank],
-                            linewidth=1.0, label=safe(s.chart, 18), zorder=3 - rank * 0.1)
+                            linewidth=1.0, label=safe(s.chart, 26), zorder=3 - rank * 0.1)
                 else:
                     ax.plot(x, ratio, color=FAINT, linewidth=0.5, zorder=1)
             _hline(ax, 100.0, STATUS[ALARM], "-")
