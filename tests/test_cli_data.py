@@ -191,7 +191,7 @@ def test_pull_without_source_section(plant_store):
                                           "  source: no [source] section: give url, query and kind to pull from"]
 
 
-@pytest.mark.parametrize("args", [["load", "events"], ["load", "counts"], ["counts"], ["pull"], ["load"]])
+@pytest.mark.parametrize("args", [["load", "events"], ["load", "counts"], ["counts"], ["pull"], ["load"], ["loads"]])
 def test_help(args):
     result = CliRunner().invoke(main, [*args, "--help"])
     assert result.exit_code == 0 and "Usage:" in result.output
@@ -206,3 +206,16 @@ def test_failure_late_in_the_load_leaves_nothing(plant_store, tmp_path):
     result = run(plant_store, "load", "events", str(path), "--skip-bad", "--rejects", str(target))
     assert (result.exit_code, result.stderr) == (2, f"Error: --rejects: cannot write {target}: No such file or directory\n")
     assert plant_store.dump() == before
+
+
+def test_loads_shows_the_audit_trail(plant_store, tmp_path):
+    path = put(tmp_path, "e.csv", GOOD)
+    assert run(plant_store, "loads").stdout == "no loads yet\n"
+    run(plant_store, "load", "events", str(path))
+    data = json.loads(run(plant_store, "loads", "--format", "json").stdout)
+    assert len(data) == 1
+    row = data[0]
+    assert (row["kind"], row["rows_accepted"], row["rows_rejected"], row["corrections"]) == ("events", 2, 0, 0)
+    assert row["source"] == str(path.resolve()) and len(row["sha256"]) == 64
+    table = run(plant_store, "loads").stdout
+    assert "events  2 ok, 0 bad, 0 corr." in table and row["sha256"][:12] in table

@@ -1,4 +1,4 @@
-"""Data commands: ``qcfit load events|counts FILE``, ``qcfit counts``, ``qcfit pull``.
+"""Data commands: ``qcfit load events|counts FILE``, ``qcfit counts``, ``qcfit pull``, ``qcfit loads``.
 
 File formats and load rules: see :mod:`qcfit.ingest` (and the README's "Data formats").
 """
@@ -28,7 +28,7 @@ from qcfit.ingest import (
     pull,
     spreadsheet_safe,
 )
-from qcfit.store.defects import read_counts
+from qcfit.store.defects import list_loads, read_counts
 from qcfit.store.engine import read_tx
 
 FORMATS = ("table", "csv", "json")
@@ -235,3 +235,31 @@ def pull_command(ctx: click.Context, since: str | None, skip_bad: bool, rejects:
         rejects = f"qcfit-pull-{now:%Y%m%dT%H%M%SZ}{REJECTS_SUFFIX}"
     report = pull(a.engine(), config, now=now, since=start, skip_bad=skip_bad, rejects=rejects, **_who())
     _echo_report(report)
+
+
+@main.command("loads")
+@click.option("--limit", type=click.IntRange(min=1), default=20, show_default=True, help="How many loads, newest first.")
+@click.option("--format", "fmt", type=click.Choice(("table", "json")), default="table", show_default=True)
+@click.pass_context
+def loads_command(ctx: click.Context, limit: int, fmt: str) -> None:
+    """Show the audit trail of loads: source, content hash, rows, corrections, who and when."""
+    with read_tx(app(ctx).engine()) as conn:
+        rows = list_loads(conn, limit=limit)
+    data = [
+        {"id": r.id, "kind": r.kind, "loaded_utc": r.loaded.isoformat(), "os_user": r.os_user, "host": r.host,
+         "rows_accepted": r.rows_accepted, "rows_rejected": r.rows_rejected, "corrections": r.corrections,
+         "sha256": r.content_hash, "source": r.source, "note": r.note}
+        for r in rows
+    ]
+    if fmt == "json":
+        click.echo(json.dumps(data, indent=2))
+        return
+    if not data:
+        click.echo("no loads yet")
+        return
+    for d in data:
+        click.echo(
+            f"{d['id']:>5}  {d['loaded_utc'][:16].replace('T', ' ')} UTC  {d['kind']:<6}  "
+            f"{d['rows_accepted']} ok, {d['rows_rejected']} bad, {d['corrections']} corr.  "
+            f"{d['os_user']}@{d['host']}  {d['sha256'][:12]}  {d['source']}"
+        )
