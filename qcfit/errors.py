@@ -137,6 +137,13 @@ class StoreError(QcfitError):
 class SchemaError(StoreError):
     """The store is not initialised (run ``qcfit init``) or was made by a newer qcfit."""
 
+    def __init__(self, reason: str) -> None:
+        super().__init__(reason)
+        self.args = (reason,)
+
+    def __str__(self) -> str:
+        return self.reason
+
 
 class AlreadyRunningError(QcfitError):
     """Another qcfit service already holds this store."""

@@ -186,7 +186,7 @@ def test_fit_refuses_a_window_with_categories_no_longer_in_the_config(loaded):
 def test_fit_on_a_store_that_was_never_initialised(tmp_path, plant_config_text, write_config):
     path = write_config(tmp_path, plant_config_text)
     result = run(path, "baseline", "fit", "--line", "L1", "--from", "2026-01-05", "--to", "2026-01-10")
-    assert result.exit_code == 1 and "Error: store: store not initialised: run `qcfit init`" in result.stderr
+    assert result.exit_code == 1 and "Error: store not initialised: run `qcfit init`" in result.stderr
 
 
 # --------------------------------------------------------------------------- list / show / diff

@@ -220,7 +220,7 @@ def test_cli_store_made_by_a_newer_qcfit(config_path: Path) -> None:
     result = invoke("--config", str(config_path), "init")
     assert result.exit_code == 1
     assert result.stderr.strip() == (
-        "Error: store: store was made by a newer qcfit (revision ffff0099)"
+        "Error: store was made by a newer qcfit (revision ffff0099)"
     )
 
 
