@@ -26,10 +26,10 @@ from qcfit.ingest_rows import (
     COUNT_OPTIONAL,
     EVENT_COLUMNS,
     EVENT_OPTIONAL,
-    localize_naive,
     validate_counts,
     validate_events,
 )
+from qcfit.ingest_time import localize_naive
 
 NOW = dt.datetime(2026, 12, 1, tzinfo=dt.UTC)
 CHICAGO = ZoneInfo("America/Chicago")
