@@ -93,30 +93,28 @@ def shift_seed(base_seed: int, shift_id: str) -> int:
 # reading
 
 
-@dataclass(frozen=True, slots=True)
-class _Snapshot:
-    table: CountTable
-    shift_row_id: int | None
-
-
-def _read_table(engine: Any, config: Any, shift: ShiftInstance) -> _Snapshot:
+def _table_in(conn: Any, config: Any, shift: ShiftInstance) -> CountTable:
     from qcfit.store.defects import shift_table
 
     lines = tuple(config.lines)
     categories = tuple(config.categories)
-    with read_tx(engine) as conn:
-        row = shift_row(conn, shift.id)
-        if row is None:
-            counts = np.zeros((len(lines), len(categories)), dtype=np.int64)
-            units = np.full(len(lines), np.nan)
-        else:
-            counts, units = shift_table(conn, row.row_id, lines, categories)
+    row = shift_row(conn, shift.id)
+    if row is None:
+        counts = np.zeros((len(lines), len(categories)), dtype=np.int64)
+        units = np.full(len(lines), np.nan)
+    else:
+        counts, units = shift_table(conn, row.row_id, lines, categories)
     counts = np.array(counts, dtype=np.int64)
     units = np.array(units, dtype=float)
     counts.setflags(write=False)
     units.setflags(write=False)
-    return _Snapshot(CountTable(shift, lines, categories, counts, units),
-                     None if row is None else row.row_id)
+    return CountTable(shift, lines, categories, counts, units)
+
+
+def _read_tables(engine: Any, config: Any, shifts: Sequence[ShiftInstance]) -> list[CountTable]:
+    """The count tables of ``shifts``, read in one read transaction."""
+    with read_tx(engine) as conn:
+        return [_table_in(conn, config, s) for s in shifts]
 
 
 def _baselines(config: Any, versions: Mapping[str, int], table: CountTable
@@ -248,31 +246,31 @@ def _evaluation_row(config: Any, shift_row_id: int, status: str, seed: int, star
     }
 
 
-def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
-            seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
-    names = dict(config.categories)
-
-    def work(conn: Any) -> tuple[Any, Any, int, int | None]:
-        row_id = ensure_shifts(conn, [shift])[shift.id]
-        active = alarmlog.active_alarms(conn, row_id)
-        decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
-                                history=_history(conn, config, shift), names=names)
-        old = esql.supersede_current(conn, row_id, to_utc_naive(now))
-        eval_id = esql.insert_evaluation(
-            conn, _evaluation_row(config, row_id, OK, seed, now, t0, None, True))
-        esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
-        applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
-                                           shift_start_utc=to_utc_naive(shift.start), now=now)
-        return decided, applied, eval_id, old
-
-    # one write transaction; retried (from scratch) if the store stays locked
-    decided, applied, eval_id, old = run_write(engine, work)
+def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
+               seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
+    """Decide and write one shift's evaluation inside the caller's write transaction."""
+    row_id = ensure_shifts(conn, [shift])[shift.id]
+    active = alarmlog.active_alarms(conn, row_id)
+    decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
+                            history=_history(conn, config, shift), names=dict(config.categories))
+    old = esql.supersede_current(conn, row_id, to_utc_naive(now))
+    eval_id = esql.insert_evaluation(
+        conn, _evaluation_row(config, row_id, OK, seed, now, t0, None, True))
+    esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
+    applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
+                                       shift_start_utc=to_utc_naive(shift.start), now=now)
     verdicts = Counter(f.verdict for f in decided.findings)
     return EvaluationSummary(
         shift_id=shift.id, evaluation_id=eval_id, status=OK, seed=seed, superseded_id=old,
         findings=len(decided.findings), verdicts=tuple(sorted(verdicts.items())),
         opened=applied.opened, updated=applied.updated, cleared=applied.cleared,
         seconds=time.perf_counter() - t0)
+
+
+def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
+            seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
+    # one write transaction; retried (from scratch) if the store stays locked
+    return run_write(engine, lambda conn: _write_one(conn, config, shift, findings, seed, now, t0))
 
 
 def _error_text(exc: BaseException) -> str:
@@ -308,6 +306,21 @@ def _record_failure(engine: Any, config: Any, shift: ShiftInstance, exc: BaseExc
 # public entry points
 
 
+def _compute(config: Any, versions: Mapping[str, int], table: CountTable, seed: int,
+             extra: ExtraFindings | None) -> tuple[ev.Finding, ...]:
+    baselines, problems = _baselines(config, versions, table)
+    more = tuple(extra(table, baselines)) if extra is not None else ()
+    findings = ev.evaluate_table(table, baselines, config.thresholds, seed=seed, extra=more)
+    return tuple(_with_problems(findings, problems))
+
+
+def _log_done(summary: EvaluationSummary) -> None:
+    log.info("shift %s evaluated: %d findings, %d alarm(s) opened", summary.shift_id,
+             summary.findings, len(summary.opened))
+    for alarm_id in summary.opened:  # after the commit: the store is the source of truth
+        log.info("alarm %d opened by shift %s", alarm_id, summary.shift_id)
+
+
 def evaluate_shift(
     engine: Any,
     config: Any,
@@ -331,20 +344,40 @@ def evaluate_shift(
     try:
         if versions is None:
             versions = sync_versions(engine, config, now=now, os_user=os_user)
-        snap = _read_table(engine, config, shift)
-        baselines, problems = _baselines(config, versions, snap.table)
-        more = tuple(extra(snap.table, baselines)) if extra is not None else ()
-        findings = ev.evaluate_table(snap.table, baselines, config.thresholds, seed=seed,
-                                     extra=more)
-        findings = _with_problems(findings, problems)
+        (table,) = _read_tables(engine, config, [shift])
+        findings = _compute(config, versions, table, seed, extra)
         summary = _commit(engine, config, shift, findings, seed, now, t0)
     except Exception as exc:
         return _record_failure(engine, config, shift, exc, seed, now, t0)
-    log.info("shift %s evaluated: %d findings, %d alarm(s) opened", shift.id, summary.findings,
-             len(summary.opened))
-    for alarm_id in summary.opened:  # after the commit: the store is the source of truth
-        log.info("alarm %d opened by shift %s", alarm_id, shift.id)
+    _log_done(summary)
     return summary
+
+
+CHUNK = 25  # shifts per write transaction in a backfill
+
+
+def _evaluate_chunk(engine: Any, config: Any, shifts: Sequence[ShiftInstance], *,
+                    now: dt.datetime, versions: Mapping[str, int], os_user: str,
+                    extra: ExtraFindings | None) -> list[EvaluationSummary]:
+    """Several shifts: one read transaction, compute, then ONE write transaction for all of
+    them in order (each shift's results are still all-or-nothing). Any trouble, and the chunk
+    is evaluated shift by shift instead, so failures are recorded one by one."""
+    t0 = time.perf_counter()
+    try:
+        tables = _read_tables(engine, config, shifts)
+        work = [(s, shift_seed(config.thresholds.seed, s.id)) for s in shifts]
+        computed = [(s, seed, _compute(config, versions, t, seed, extra))
+                    for (s, seed), t in zip(work, tables, strict=True)]
+        out = run_write(engine, lambda conn: [
+            _write_one(conn, config, s, found, seed, now, t0) for s, seed, found in computed])
+    except Exception as exc:
+        log.warning("evaluating %d shifts together failed (%s); going shift by shift",
+                    len(shifts), _error_text(exc))
+        return [evaluate_shift(engine, config, s, now=now, versions=versions, os_user=os_user,
+                               extra=extra) for s in shifts]
+    for summary in out:
+        _log_done(summary)
+    return out
 
 
 def evaluate_shifts(
@@ -356,17 +389,25 @@ def evaluate_shifts(
     os_user: str = DEFAULT_USER,
     progress: Progress | None = None,
     extra: ExtraFindings | None = None,
+    chunk: int = CHUNK,
 ) -> list[EvaluationSummary]:
-    """Evaluate ``shifts`` in order (re-evaluating any already evaluated)."""
+    """Evaluate ``shifts`` in order (re-evaluating any already evaluated), ``chunk`` shifts per
+    write transaction."""
     if not shifts:
         return []
     versions = sync_versions(engine, config, now=now, os_user=os_user)
-    out = []
-    for i, shift in enumerate(shifts):
-        out.append(evaluate_shift(engine, config, shift, now=now, versions=versions,
-                                  os_user=os_user, extra=extra))
+    out: list[EvaluationSummary] = []
+    for start in range(0, len(shifts), max(1, chunk)):
+        part = shifts[start:start + max(1, chunk)]
+        if len(part) == 1:
+            out.append(evaluate_shift(engine, config, part[0], now=now, versions=versions,
+                                      os_user=os_user, extra=extra))
+        else:
+            out += _evaluate_chunk(engine, config, part, now=now, versions=versions,
+                                   os_user=os_user, extra=extra)
         if progress is not None:
-            progress(i + 1, len(shifts), out[-1])
+            for i in range(len(out) - len(part), len(out)):
+                progress(i + 1, len(shifts), out[i])
     return out
 
 

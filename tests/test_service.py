@@ -314,3 +314,25 @@ def test_same_shift_same_seed_across_stores(tmp_path, plant_config_text):
             seeds.append((s.seed, [(f["pvalue"], f["method"]) for f in findings_of(conn, s.evaluation_id)]))
         engine.dispose()
     assert seeds[0] == seeds[1]
+
+
+def test_backfill_in_chunks_equals_shift_by_shift(tmp_path, plant_config_text):
+    text = plant_text(plant_config_text, min_effect_w=0.3, min_effect_v=0.3, mc_draws=2000)
+    results = []
+    for sub, chunk in (("one", 1), ("chunks", 4)):
+        (tmp_path / sub).mkdir()
+        config, engine = make_store(tmp_path / sub, text)
+        shifts = shifts_from(ShiftCalendar.from_config(config), "2026-01-06_A", 7)
+        rng = np.random.default_rng(9)
+        for k, s in enumerate(shifts):
+            bad = flash_jump(300, rng) if 1 <= k <= 2 else healthy(300, rng)
+            load_counts(engine, s, {"L1": bad} | {ln: healthy(300, rng) for ln in LINES[1:]})
+        done = service.evaluate_shifts(engine, config, shifts, now=after(shifts[-1]), chunk=chunk)
+        with read_tx(engine) as conn:
+            found = [(f["kind"], f["line"], f["verdict"], f["pvalue"], f["adjusted_pvalue"])
+                     for s in done for f in findings_of(conn, s.evaluation_id)]
+        story = [(a.kind, a.line, a.state, a.shift_count, a.shift_id) for a in alarmlog.list_alarms(engine)]
+        results.append(([(s.shift_id, s.opened, s.cleared) for s in done], found, story))
+        engine.dispose()
+    assert results[0] == results[1]
+    assert any(opened for _, opened, _ in results[0][0])
