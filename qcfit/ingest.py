@@ -34,7 +34,8 @@ Rules of a load (one call = one store transaction):
 * Every load that writes leaves one audit row in ``load``: kind, source, sha256 of the
   bytes, rows accepted and rejected, corrections, when (``now``), OS user and host.
 
-Pull (``[source]`` in the config): ``url`` is a SQLAlchemy URL, ``query`` returns columns
+Pull (``[source]`` in the config): ``url`` is a SQLAlchemy URL (a relative SQLite path is
+relative to the config file's folder; SQLite sources are opened read-only), ``query`` returns columns
 named like an events file (``kind = "events"``) or a counts file (``kind = "counts"``) (use
 SQL aliases). The rows are rendered as CSV text and go through exactly the same checks; for
 a pull "line N" in a message means the N-th row of the query result. If the query contains
@@ -557,7 +558,8 @@ def pull(
     if skip_bad and rejects is None:
         raise InvalidArgumentError("rejects", "a pull with skip_bad needs a rejects file path")
     since_text = since.astimezone(dt.UTC).strftime("%Y-%m-%d %H:%M:%S")
-    columns, rows, bound = fetch_source_rows(source.url, source.query, {"since": since_text})
+    base = Path(config.path).parent if config.path else None
+    columns, rows, bound = fetch_source_rows(source.url, source.query, {"since": since_text}, base_dir=base)
     data = render_rows(columns, rows)
     label = f"[source] query result ({_shown(source.url)})"
     binds_since = "since" in bound

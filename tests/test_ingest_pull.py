@@ -132,3 +132,12 @@ def test_pull_command(plant_store):
     bad = CliRunner().invoke(main, ["--config", str(plant_store.config_path), "pull", "--since", "soon"])
     assert (bad.exit_code, bad.stderr) == (
         2, "Error: --since: 'soon' is not a date or ISO 8601 time (e.g. 2026-01-05 or 2026-01-05T06:00-06:00)\n")
+
+
+def test_relative_sqlite_source_is_beside_the_config(plant_store, tmp_path, monkeypatch):
+    text = plant_store.config_path.read_text(encoding="utf-8").replace(f"sqlite:///{tmp_path}/stations.sqlite", "sqlite:///stations.sqlite")
+    assert 'url = "sqlite:///stations.sqlite"' in text
+    (tmp_path / "rel.toml").write_text(text, encoding="utf-8")
+    monkeypatch.chdir(tmp_path.parent)  # somewhere else: the path must not depend on it
+    report = pull(plant_store.engine, load_config(tmp_path / "rel.toml"), now=NOW, since=SINCE)
+    assert report.events_added == 3

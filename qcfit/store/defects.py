@@ -20,6 +20,7 @@ import datetime as dt
 import logging
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 from zoneinfo import ZoneInfo
 
@@ -435,10 +436,13 @@ def shift_table(conn: Connection, shift_row_id: int, lines: Sequence[str], categ
 # --- pulling from another database --------------------------------------------------------
 
 
-def fetch_source_rows(url: str, query: str, params: Mapping[str, Any]) -> tuple[list[str], list[tuple], set[str]]:
+def fetch_source_rows(
+    url: str, query: str, params: Mapping[str, Any], *, base_dir: Path | None = None
+) -> tuple[list[str], list[tuple], set[str]]:
     """Run ``query`` on the database at ``url``; return (column names, rows, names bound).
 
-    Only the bound parameters the query names (``:since``) are passed. The connection is
+    A relative SQLite file path is taken relative to ``base_dir`` (the config's folder)
+    when given. Only the bound parameters the query names (``:since``) are passed. The connection is
     read-only where the driver allows (SQLite files are opened with ``mode=ro``).
     InputFileError (exit 2) when the URL or query is wrong; StoreError when the database
     cannot be reached.
@@ -450,7 +454,10 @@ def fetch_source_rows(url: str, query: str, params: Mapping[str, Any]) -> tuple[
         raise InputFileError(f"[source] url {url!r}", reason=f"not a database URL ({exc})") from exc
     engine_args: dict[str, Any] = {}
     if parsed.get_backend_name() == "sqlite" and parsed.database and parsed.database != ":memory:":
-        engine_args["creator"] = _sqlite_readonly(parsed.database)
+        target = Path(parsed.database).expanduser()
+        if not target.is_absolute() and base_dir is not None:
+            target = Path(base_dir) / target
+        engine_args["creator"] = _sqlite_readonly(target)
     try:
         engine = create_engine(parsed, **engine_args)
     except (sa_exc.ArgumentError, ImportError) as exc:
@@ -483,11 +490,10 @@ def _shown_url(url: str) -> str:
         return url
 
 
-def _sqlite_readonly(path: str):
-    import pathlib
+def _sqlite_readonly(path: Path):
     import sqlite3
 
-    target = pathlib.Path(path).expanduser().resolve()
+    target = path.resolve()
 
     def connect():
         if not target.exists():
