@@ -156,9 +156,10 @@ def test_ack_clear_and_the_full_story(cli):
     assert "Baseline: plant (version 1, effective 2026-01-05)" in text
     assert "flash (FL)" in text and "observed" in text and "adj. residual" in text
     history = text.split("History:")[1].splitlines()
-    actions = [ln.split()[3] for ln in history if ln.strip()]
+    actions = [ln.split()[3] for ln in history if ln.startswith("  2")]  # event lines
     assert actions == ["open", "update", "acknowledge", "clear"]
     assert "mould 4 inspected" in text and "new die fitted" in text
+    assert all(len(ln) <= 100 for ln in history)
 
 
 def test_unknown_alarm_and_blank_name(cli):

@@ -163,10 +163,12 @@ def story_lines(story: Any, tz: dt.tzinfo | None, names: Mapping[str, str]) -> l
         out.append(f"  In control since: {', '.join(d['in_control_shifts'])}")
     out.append("History:")
     for e in story.events:
-        note = f"  {e.note}" if e.note else ""
         shift = f" shift {e.shift_id}" if e.shift_id else ""
         out.append(f"  {_local(e.at, tz)}  {e.action:<11} {e.by:<12} "
-                   f"{e.from_state or '-'} -> {e.to_state}{shift}{note}")
+                   f"{e.from_state or '-'} -> {e.to_state}{shift}")
+        for clause in (e.note or "").split("; ") if e.note else []:
+            out += textwrap.wrap(clause, width=WIDTH, initial_indent=" " * INDENT,
+                                 subsequent_indent=" " * (INDENT + 2))
     return out
 
 
