@@ -53,6 +53,7 @@ RESIDUAL_MAP = LinearSegmentedColormap.from_list(
                        (0.67, "#e8a487"), (1.0, "#8e2f17")])
 
 RESIDUAL_NOTE = 2.0  # |adjusted residual| worth marking (common practice, no source)
+MAP_ALL_NUMBERS = 12  # up to this many lines every cell of the map carries its number
 RESIDUAL_CLIP = 6.0  # colour scale of the residual map ends here
 P_FLOOR = 1e-8  # p-values below this are drawn at it ("off scale")
 WIDTH = 7.2  # inches: the A4 text width with 12 mm margins, less a little
@@ -174,11 +175,7 @@ def _shift_ticks(ax, data: ReportData) -> None:
     n = len(data.history)
     ax.set_xlim(-0.6, n - 0.4)
     ax.axvspan(n - 1.5, n - 0.5, color=BAND, zorder=0, linewidth=0)
-    if n <= 1:
-        ticks = [0]
-    else:
-        step = max(1, math.ceil((n - 1) / 2))
-        ticks = sorted({*range(n - 1, -1, -step)})
+    ticks = sorted({0, (n - 1) // 2, n - 1}) if n > 2 else list(range(n))
     ax.set_xticks(ticks)
     ax.set_xticklabels([f"{data.history[i].date:%d %b}\n{safe(data.history[i].name, 6)}"
                         for i in ticks])
@@ -192,9 +189,10 @@ def _status_points(ax, x: np.ndarray, y: np.ndarray, verdicts: Sequence[str]) ->
         if not sel.any():
             continue
         hollow = verdict == TOO_LITTLE
-        ax.scatter(x[sel], y[sel], s=12 if verdict in (ALARM, WATCH) else 8,
-                   marker=MARKER[verdict], facecolors="none" if hollow else colour,
-                   edgecolors=colour, linewidths=0.7, zorder=3)
+        ax.plot(x[sel], y[sel], linestyle="none", marker=MARKER[verdict],
+                markersize=3.6 if verdict in (ALARM, WATCH) else 2.9,
+                markerfacecolor="none" if hollow else colour, markeredgecolor=colour,
+                markeredgewidth=0.7, zorder=3)
 
 
 def _hline(ax, y: float, colour: str, style: str, text: str = "") -> None:
@@ -293,9 +291,12 @@ def residual_map(data: ReportData, lines: Sequence[str]) -> str:
         ax.set_xlim(-0.5, k - 0.5)
         ax.set_ylim(len(lines) - 0.5, -0.5)
         ax.set_facecolor("#eef0f2")
+        every = len(lines) <= MAP_ALL_NUMBERS
         for i in range(len(lines)):
             for j in range(k):
                 r = mat[i, j]
+                if np.isfinite(r) and not every and abs(r) < RESIDUAL_NOTE:
+                    continue  # a large plant: only the cells worth a look carry their number
                 if not np.isfinite(r):
                     ax.text(j, i, "\u2013", ha="center", va="center", color=MUTED,
                             fontsize=FONT - 1)

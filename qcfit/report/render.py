@@ -344,7 +344,9 @@ def _charts(data: ReportData) -> list[str]:
         _section("Where the mix differs: adjusted residuals, lines \u00d7 categories",
                  plots.residual_map(data, codes),
                  "Each cell: (observed \u2212 expected) in standard errors against the line's "
-                 "baseline. Beyond \u00b12 is worth a look; \u2013 means not tested."),
+                 "baseline. Beyond \u00b12 is worth a look; \u2013 means not tested."
+                 + (" With this many lines only cells beyond \u00b12 carry their number."
+                    if len(codes) > plots.MAP_ALL_NUMBERS else "")),
         _section(f"Mix test over the last {n_hist} shifts",
                  _key(*STATUS_KEY) + plots.mix_history(data, shown),
                  f"Shifts {e(span)} (the shaded one is this shift). Top: adjusted p-value, "
