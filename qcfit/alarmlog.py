@@ -358,6 +358,24 @@ def _close(ctx: tuple, d: AlarmDecision) -> bool:
     return True
 
 
+SERVICE_LABEL = "service"  # stands for the shift in the shift list of a fault with no shift
+
+
+def record_service_fault(engine: Any, reason: str, *, now: dt.datetime) -> int:
+    """A service fault not tied to a shift (for example an invalid new config): one plant-wide
+    ``service-fault`` alarm, updated if one is open. Returns its id. The alarm clears itself
+    after ``auto_clear_after`` shifts evaluated without fault, or by hand."""
+    from qcfit.policy import fault_decisions
+
+    with write_tx(engine) as conn:
+        active = active_alarms(conn)
+        decisions = fault_decisions(SERVICE_LABEL, reason, active, summary=f"service: {reason}")
+        applied = apply_decisions(conn, decisions, shift_row_id=None, shift_start_utc=None, now=now)
+    alarm_id = (applied.opened or applied.updated)[0]
+    log.info("alarm %d: service fault: %s", alarm_id, reason)
+    return alarm_id
+
+
 # ---------------------------------------------------------------------------------------
 # people acting on alarms
 

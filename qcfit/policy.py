@@ -386,10 +386,12 @@ def _in_control(found: Sequence[Finding], kind: str) -> bool:
     return bool(found) and all(f.verdict == IN_CONTROL for f in found)
 
 
-def fault_decisions(shift_id: str, reason: str, active: Sequence[ActiveAlarm]) -> tuple[AlarmDecision, ...]:
-    """A failed evaluation: one plant-wide service-fault alarm (updated if already open)."""
-    figs = {"severity": ALARM, "summary": f"evaluation of {shift_id} failed: {reason}"[:500],
-            "details": {"error": reason}}
+def fault_decisions(shift_id: str, reason: str, active: Sequence[ActiveAlarm], *,
+                    summary: str | None = None) -> tuple[AlarmDecision, ...]:
+    """A failed evaluation (or another service fault, with its own ``summary``): one
+    plant-wide service-fault alarm, updated if one is already open."""
+    words = summary or f"evaluation of {shift_id} failed: {reason}"
+    figs = {"severity": ALARM, "summary": words[:500], "details": {"error": reason}}
     for a in active:
         if a.kind == KIND_FAULT and a.line is None and a.state in ACTIVE_STATES:
             return (_update(a, shift_id, figs, KIND_FAULT, None),)

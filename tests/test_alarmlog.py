@@ -178,3 +178,16 @@ def test_json_row_fields_and_plant_time(store):
     assert row["shift_start"] == shifts[0].start.isoformat()
     assert row["line"] == "L1" and row["categories"] == [
         {"code": "FL", "direction": "up", "adjusted_residual": 3.4}]
+
+
+def test_service_fault_without_a_shift_is_raised_once_then_updated(store):
+    engine, _, _ = store
+    first = alarmlog.record_service_fault(engine, "config plant.toml: thresholds.alarm_level: must be < 1",
+                                          now=NOW)
+    again = alarmlog.record_service_fault(engine, "config plant.toml: still invalid",
+                                          now=NOW + dt.timedelta(minutes=5))
+    assert first == again
+    a = alarmlog.get_alarm(engine, first)
+    assert (a.kind, a.line, a.state, a.shift_id) == ("service-fault", None, "open", None)
+    assert a.summary == "service: config plant.toml: still invalid"
+    assert [e.action for e in alarmlog.alarm_story(engine, first).events] == ["open", "update"]
