@@ -454,16 +454,32 @@ def rate_history(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -
 
 # --- over time: sequential charts -----------------------------------------------------------
 
-SEQ_SHOWN = 4  # charts drawn in colour per line; the rest thin grey
+SEQ_SHOWN = 4  # charts named and coloured (the same on every panel); the rest thin grey
 SEQ_COLOURS = ("#2f67a0", "#b5472b", "#3d8a5a", "#7a4f9a")
 SEQ_STYLES = ("-", (0, (4, 1.5)), (0, (1, 1)), (0, (6, 2, 1, 2)))
+SEQ_WORDS = ("solid", "dashed", "dotted", "dash-dot")
+
+
+def sequential_key(data: ReportData, lines: Sequence[str]) -> list[tuple[str, str, str]]:
+    """The charts named in :func:`sequential`: (chart name, colour, line style word), the
+    charts that came nearest their threshold on any drawn line first."""
+    best: dict[str, float] = {}
+    for s in data.charts:
+        if s.line in lines:
+            r = _ratio(s)
+            peak = float(np.nanmax(r)) if np.isfinite(r).any() else -1.0
+            best[s.chart] = max(best.get(s.chart, -1.0), peak)
+    names = sorted(best, key=lambda c: (-best[c], c))[:SEQ_SHOWN]
+    return [(n, SEQ_COLOURS[i], SEQ_WORDS[i]) for i, n in enumerate(names)]
 
 
 def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> str:
     """Per line: each sequential chart's statistic as a share of its threshold (100 % = the
-    chart signals). The charts closest to their threshold on the report's shift are named."""
+    chart signals). The charts of :func:`sequential_key` keep one colour and line style on
+    every panel; any others are thin grey lines."""
     rows, cols = _grid_shape(len(lines), max_cols)
     x = np.arange(len(data.history))
+    style = {name: i for i, (name, _, _) in enumerate(sequential_key(data, lines))}
     by_line: dict[str, list] = {}
     for s in data.charts:
         by_line.setdefault(s.line, []).append(s)
@@ -473,20 +489,19 @@ def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> 
         top = 1.2
         for a, line in enumerate(lines):
             ax = axes[a // cols][a % cols]
-            ranked = sorted(by_line.get(line, []), key=lambda s: -_last_ratio(s))
-            for rank, s in enumerate(ranked):
+            mine = by_line.get(line, [])
+            for s in mine:
                 ratio = 100 * _ratio(s)
-                top = max(top, float(np.nanmax(np.r_[ratio, 0.0])) / 100)
-                if rank < SEQ_SHOWN:
-                    ax.plot(x, ratio, color=SEQ_COLOURS[rank], linestyle=SEQ_STYLES[rank],
-                            linewidth=1.0, label=safe(s.chart, 26), zorder=3 - rank * 0.1)
-                else:
+                if np.isfinite(ratio).any():
+                    top = max(top, float(np.nanmax(ratio)) / 100)
+                i = style.get(s.chart)
+                if i is None:
                     ax.plot(x, ratio, color=FAINT, linewidth=0.5, zorder=1)
+                else:
+                    ax.plot(x, ratio, color=SEQ_COLOURS[i], linestyle=SEQ_STYLES[i],
+                            linewidth=1.0, zorder=3 - i * 0.1)
             _hline(ax, 100.0, STATUS[ALARM], "-")
-            if ranked:
-                ax.legend(loc="upper left", fontsize=FONT - 1.5, frameon=False, handlelength=2,
-                          borderaxespad=0.2, labelspacing=0.2)
-            else:
+            if not mine:
                 ax.text(0.5, 0.5, "no chart values", transform=ax.transAxes, ha="center",
                         va="center", color=MUTED)
             ax.set_title(safe(line, 14), loc="left", pad=2)
@@ -497,7 +512,7 @@ def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> 
             if a + cols < len(lines):
                 ax.tick_params(labelbottom=False)
         for a in range(len(lines)):
-            axes[a // cols][a % cols].set_ylim(0, 100 * min(top, 5.0) * 1.1)
+            axes[a // cols][a % cols].set_ylim(0, 100 * min(top, 5.0) * 1.08)
         for a in range(len(lines), rows * cols):
             axes[a // cols][a % cols].set_visible(False)
         return to_svg(fig, "sequential", "Sequential chart statistics over the last shifts")

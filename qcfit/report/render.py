@@ -35,6 +35,8 @@ from qcfit.report.data import (
 from qcfit.report.style import CSS
 
 DETAIL_LINES = 8  # lines drawn in the per-line charts of a large plant
+LIST_LINES = 6  # more lines than this with too little data are summed up per test
+LIST_CODES = 12  # line codes named in such a summary
 
 KIND_WORDS = {
     "baseline": "mix vs baseline",
@@ -150,6 +152,33 @@ def too_little_lines(data: ReportData) -> list[tuple[str, str]]:
     return out
 
 
+def _span(values: Sequence[float], spec: str) -> str:
+    lo, hi = min(values), max(values)
+    return format(lo, spec) if format(lo, spec) == format(hi, spec) else (
+        f"{format(lo, spec)}\u2013{format(hi, spec)}")
+
+
+def _too_little_groups(data: ReportData) -> list[str]:
+    """One sentence per test (mix, rate) over the lines with too little data, for plants with
+    more of them than a list can show."""
+    out = []
+    for kind, what in ((KIND_MIX, "mix"), (KIND_RATE, "rate")):
+        found = [f for f in data.findings if f.kind == kind and f.verdict == TOO_LITTLE]
+        if not found:
+            continue
+        codes = [f.line for f in found if f.line]
+        shown = ", ".join(codes[:LIST_CODES]) + (
+            f" and {len(codes) - LIST_CODES} more" if len(codes) > LIST_CODES else "")
+        floors = sorted({f"{f.effect_name} {f.effect_floor:g}" for f in found
+                         if math.isfinite(f.effect_floor)})
+        power = [f.power for f in found if math.isfinite(f.power)]
+        n = [float(f.n) for f in found]
+        power_text = _span(power, ".2f") if power else "\u2013"
+        out.append(f"{what} test on {len(found)} lines ({shown}): power {power_text} to see "
+                   f"{', '.join(floors)} with {_span(n, ',.0f')} defects")
+    return out
+
+
 def _headline(data: ReportData) -> str:
     status = worst(data)
     if status == "failed":
@@ -180,14 +209,18 @@ def _headline(data: ReportData) -> str:
     notes = []
     if earlier:
         notes.append(f"{len(earlier)} alarm{'s' if len(earlier) != 1 else ''} from earlier shifts still "
-                     f"open ({', '.join(_line_label(data, a.line) for a in earlier)})")
+                     f"open ({', '.join(sorted({a.line or 'all lines' for a in earlier}))})")
     if cleared:
         notes.append(f"{len(cleared)} cleared itself after this shift")
     if notes:
         out.append(f'<p class="also">{e("; ".join(notes))}.</p>')
     little = too_little_lines(data)
     if little:
-        items = "".join(f"<li><b>{e(_line_label(data, c))}</b>: {e(w)}</li>" for c, w in little)
+        if len(little) <= LIST_LINES:
+            items = "".join(f"<li><b>{e(_line_label(data, c))}</b>: {e(w)}</li>"
+                            for c, w in little)
+        else:
+            items = "".join(f"<li>{e(text)}</li>" for text in _too_little_groups(data))
         out.append(f'<div class="little"><span class="lead">Too little data to tell</span> '
                    f"(not the same as in control):<ul>{items}</ul></div>")
     out.append("</section>")
@@ -321,6 +354,16 @@ def _section(title: str, body: str, note: str = "", cls: str = "") -> str:
     return f'<section class="block {cls}"><h2>{e(title)}</h2>{note_html}{body}</section>'
 
 
+def _chart_key(names: Sequence[tuple[str, str, str]]) -> str:
+    marks = {"solid": "\u2014\u2014", "dashed": "\u2013 \u2013", "dotted": "\u00b7\u00b7\u00b7",
+             "dash-dot": "\u2013\u00b7\u2013"}
+    spans = "".join(
+        f'<span class="k"><b style="color:{colour}">{marks[word]}</b> {e(name)} ({word})</span>'
+        for name, colour, word in names)
+    return (f'<p class="key">{spans}<span class="k k-limit">\u2014 threshold (100%)</span>'
+            "</p>")
+
+
 def _subset_note(data: ReportData, shown: Sequence[str]) -> str:
     if len(shown) == len(data.lines):
         return ""
@@ -363,9 +406,11 @@ def _charts(data: ReportData) -> list[str]:
     ]
     if data.charts:
         out.append(_section(
-            f"Sequential charts over the last {n_hist} shifts", plots.sequential(data, shown),
+            f"Sequential charts over the last {n_hist} shifts",
+            _chart_key(plots.sequential_key(data, shown)) + plots.sequential(data, shown),
             "Each chart's statistic as a share of its threshold: at 100% the chart signals a "
-            "lasting change. The charts nearest their threshold this shift are named."))
+            "lasting change. The charts that came nearest their threshold are named; any others are "
+            "thin grey lines."))
     else:
         out.append(_section("Sequential charts", "", "No sequential chart values are stored for "
                                                      "these shifts, so this section is empty.",

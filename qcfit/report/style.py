@@ -121,7 +121,8 @@ footer ul { padding-left: 15px; }
   table { font-size: 7.5pt; }
   th { font-size: 6.5pt; }
   td { padding: 2px 5px 2px 0; }
-  .note, .key, .fig, .moves { font-size: 7pt; }
+  .note, .key, .fig, .moves, .between { font-size: 7pt; }
+  .pair .aside { font-size: 7.5pt; }
   .block { margin: 0 0 6px; break-inside: avoid; }
   .block.tall { break-inside: auto; }
   footer { font-size: 7pt; break-inside: avoid; }
