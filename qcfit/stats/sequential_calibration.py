@@ -250,7 +250,7 @@ def _omnibus_limits(tr: Traces, arl0: float, use_e: bool, use_b: bool):
         he, hb, res = joint(arl0)
     else:
         lo, hi = arl0, 2.0 * arl0
-        for _ in range(30):
+        for _ in range(20):  # bracket width 2^-20 arl0
             mid = 0.5 * (lo + hi)
             he, hb, res = joint(mid)
             if not np.isfinite(he) or not np.isfinite(hb):

@@ -209,5 +209,6 @@ def calibrate_llr_cusum(p0: np.ndarray, weights: np.ndarray, n_profile, arl0: fl
             else:
                 lo, a_lo = probe, a_pr
     frac = (np.log(arl0) - np.log(a_lo)) / max(np.log(a_hi) - np.log(a_lo), 1e-12)
-    h = (lo + float(np.clip(frac, 0, 1)) * (hi - lo)) * step
-    return MarkovCalibration(float(h), float(lattice_arl(lp, h)), float(step), lp.method)
+    h = (lo + float(np.clip(frac, 1e-9, 1)) * (hi - lo)) * step
+    # ceil(h / step) == hi, so the chain's ARL0 at h is a_hi (>= arl0, within one lattice step)
+    return MarkovCalibration(float(h), float(a_hi), float(step), lp.method)
