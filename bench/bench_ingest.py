@@ -83,7 +83,9 @@ def write_inputs(folder: Path, n: int, seed: int = SEED) -> tuple[Path, Path]:
     instants = start + pd.to_timedelta(np.cumsum(gaps), unit="s")
     stamps = pd.DatetimeIndex(instants).tz_convert(ZONE).strftime("%Y-%m-%dT%H:%M:%S%z")
     lines = np.asarray(LINES)[rng.integers(0, len(LINES), n)]
-    cats = np.asarray(CATEGORIES)[rng.choice(len(CATEGORIES), n, p=[0.3, 0.25, 0.15, 0.12, 0.1, 0.08])]
+    cats = np.asarray(CATEGORIES)[
+        rng.choice(len(CATEGORIES), n, p=[0.3, 0.25, 0.15, 0.12, 0.1, 0.08])
+    ]
     qty = 1 + rng.binomial(2, 0.05, n)
     frame = pd.DataFrame({"timestamp": stamps, "line": lines, "category": cats, "quantity": qty})
     csv_path = folder / "events.csv"
@@ -114,12 +116,24 @@ def child_fast(config_path: Path, csv_path: Path, db: Path) -> dict:
 
     config, engine = _fresh_store(config_path, db)
     t0, c0 = time.perf_counter(), time.process_time()
-    report = load_events_file(engine, config, csv_path, now=dt.datetime(2026, 12, 1, tzinfo=dt.UTC),
-                              os_user="bench", host="bench")
+    report = load_events_file(
+        engine,
+        config,
+        csv_path,
+        now=dt.datetime(2026, 12, 1, tzinfo=dt.UTC),
+        os_user="bench",
+        host="bench",
+    )
     seconds, cpu = time.perf_counter() - t0, time.process_time() - c0
     engine.dispose()
-    return {"seconds": seconds, "cpu_seconds": cpu, "rows": report.rows_accepted, "events": report.events_added,
-            "cells": report.cells_written, "shifts": len(report.shifts)}
+    return {
+        "seconds": seconds,
+        "cpu_seconds": cpu,
+        "rows": report.rows_accepted,
+        "events": report.events_added,
+        "cells": report.cells_written,
+        "shifts": len(report.shifts),
+    }
 
 
 def child_naive(config_path: Path, csv_path: Path, db: Path, rows: int) -> dict:
@@ -160,34 +174,64 @@ def child_naive(config_path: Path, csv_path: Path, db: Path, rows: int) -> dict:
     t0, c0 = time.perf_counter(), time.process_time()
     with Session(engine) as session:
         load = schema.load.insert().values(
-            kind="events", source=str(csv_path), content_hash="naive", loaded_utc=dt.datetime(2026, 12, 1),
-            os_user="bench", host="bench", rows_accepted=0, rows_rejected=0)
+            kind="events",
+            source=str(csv_path),
+            content_hash="naive",
+            loaded_utc=dt.datetime(2026, 12, 1),
+            os_user="bench",
+            host="bench",
+            rows_accepted=0,
+            rows_rejected=0,
+        )
         load_id = session.execute(load).inserted_primary_key[0]
         with open(csv_path, encoding="utf-8", newline="") as handle:
             for i, rec in enumerate(csv.DictReader(handle)):
                 if i >= rows:
                     break
                 ts = dt.datetime.fromisoformat(rec["timestamp"])
-                if session.get(Line, rec["line"]) is None or session.get(Category, rec["category"]) is None:
+                if (
+                    session.get(Line, rec["line"]) is None
+                    or session.get(Category, rec["category"]) is None
+                ):
                     raise ValueError(f"row {i + 2}: unknown code")
                 inst = calendar.shift_at(ts)
                 utc = ts.astimezone(dt.UTC).replace(tzinfo=None)
                 shift = session.execute(
-                    select(Shift).where(Shift.shift_date == inst.date, Shift.shift_name == inst.name)
+                    select(Shift).where(
+                        Shift.shift_date == inst.date, Shift.shift_name == inst.name
+                    )
                 ).scalar_one_or_none()
                 if shift is None:
-                    shift = Shift(shift_date=inst.date, shift_name=inst.name,
-                                  start_utc=inst.start.astimezone(dt.UTC).replace(tzinfo=None),
-                                  end_utc=inst.end.astimezone(dt.UTC).replace(tzinfo=None))
+                    shift = Shift(
+                        shift_date=inst.date,
+                        shift_name=inst.name,
+                        start_utc=inst.start.astimezone(dt.UTC).replace(tzinfo=None),
+                        end_utc=inst.end.astimezone(dt.UTC).replace(tzinfo=None),
+                    )
                     session.add(shift)
                     session.flush()
                 qty = int(rec["quantity"])
-                session.add(Event(ts_utc=utc, shift_id=shift.id, line=rec["line"], category=rec["category"],
-                                  quantity=qty, load_id=load_id))
+                session.add(
+                    Event(
+                        ts_utc=utc,
+                        shift_id=shift.id,
+                        line=rec["line"],
+                        category=rec["category"],
+                        quantity=qty,
+                        load_id=load_id,
+                    )
+                )
                 cell = session.get(Count, (shift.id, rec["line"], rec["category"]))
                 if cell is None:
-                    session.add(Count(shift_id=shift.id, line=rec["line"], category=rec["category"],
-                                      count=qty, load_id=load_id))
+                    session.add(
+                        Count(
+                            shift_id=shift.id,
+                            line=rec["line"],
+                            category=rec["category"],
+                            count=qty,
+                            load_id=load_id,
+                        )
+                    )
                 else:
                     cell.count += qty
                 session.flush()
@@ -202,12 +246,16 @@ def _in_child(mode: str, *args: str) -> dict:
     before = _children_maxrss_kb()
     proc = subprocess.run(
         [sys.executable, str(Path(__file__).resolve()), "--child", mode, *args],
-        capture_output=True, text=True, check=False,
+        capture_output=True,
+        text=True,
+        check=False,
     )
     if proc.returncode != 0:
         raise RuntimeError(f"benchmark child {mode} failed:\n{proc.stderr[-3000:]}")
     result = json.loads(proc.stdout.strip().splitlines()[-1])
-    result["peak_rss_mb"] = float(result.get("maxrss_kb", max(_children_maxrss_kb(), before))) / 1024.0
+    result["peak_rss_mb"] = (
+        float(result.get("maxrss_kb", max(_children_maxrss_kb(), before))) / 1024.0
+    )
     return result
 
 
@@ -230,40 +278,44 @@ def run(n: int = N_EVENTS, naive_rows: int = NAIVE_ROWS, repeats: int = FAST_REP
             for k in range(max(1, repeats))
         ]
         fast = min(runs, key=lambda r: r["seconds"])
-        naive = _in_child("naive", str(config_path), str(csv_path), str(folder / "naive.sqlite"), str(naive_rows))
+        naive = _in_child(
+            "naive", str(config_path), str(csv_path), str(folder / "naive.sqlite"), str(naive_rows)
+        )
     naive_full = naive["seconds"] / naive["rows"] * n
     naive_full_cpu = naive["cpu_seconds"] / naive["rows"] * n
     ratio = naive_full / fast["seconds"]
     load_avg = os.getloadavg()[0]
     peak = max(r["peak_rss_mb"] for r in runs)
     ok = fast["seconds"] <= TARGET_SECONDS and peak <= TARGET_MB and ratio >= TARGET_RATIO
-    return [{
-        "bench": "ingest_events_csv",
-        "what": f"load {n:,} events from CSV ({size_mb:.0f} MB) into shift counts, SQLite store",
-        "events": n,
-        "seconds": round(fast["seconds"], 2),
-        "seconds_all_runs": [round(r["seconds"], 2) for r in runs],
-        "cpu_seconds": round(fast["cpu_seconds"], 2),
-        "target_seconds": TARGET_SECONDS,
-        "events_per_second": round(n / fast["seconds"]),
-        "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1),
-        "target_mb": TARGET_MB,
-        "count_cells": fast["cells"],
-        "shifts": fast["shifts"],
-        "naive_rows_timed": naive["rows"],
-        "naive_seconds_timed": round(naive["seconds"], 2),
-        "naive_seconds_extrapolated": round(naive_full, 1),
-        "naive_cpu_seconds_extrapolated": round(naive_full_cpu, 1),
-        "ratio": round(ratio, 1),
-        "ratio_cpu": round(naive_full_cpu / fast["cpu_seconds"], 1),
-        "load_average_1min": round(load_avg, 2),
-        "target_ratio": TARGET_RATIO,
-        "ok": bool(ok),
-        "note": f"naive path (row-by-row ORM, flush per row, one commit) timed on the first "
-                f"{naive['rows']:,} rows and extrapolated linearly to {n:,}; peak memory is the "
-                "fast child's whole-process max RSS; seconds are wall time (cpu_seconds: the child's "
-                f"CPU time, for a busy machine); cpus: {os.cpu_count()}",
-    }]
+    return [
+        {
+            "bench": "ingest_events_csv",
+            "what": f"load {n:,} events from CSV ({size_mb:.0f} MB) into shift counts (SQLite)",
+            "events": n,
+            "seconds": round(fast["seconds"], 2),
+            "seconds_all_runs": [round(r["seconds"], 2) for r in runs],
+            "cpu_seconds": round(fast["cpu_seconds"], 2),
+            "target_seconds": TARGET_SECONDS,
+            "events_per_second": round(n / fast["seconds"]),
+            "peak_rss_mb": round(max(r["peak_rss_mb"] for r in runs), 1),
+            "target_mb": TARGET_MB,
+            "count_cells": fast["cells"],
+            "shifts": fast["shifts"],
+            "naive_rows_timed": naive["rows"],
+            "naive_seconds_timed": round(naive["seconds"], 2),
+            "naive_seconds_extrapolated": round(naive_full, 1),
+            "naive_cpu_seconds_extrapolated": round(naive_full_cpu, 1),
+            "ratio": round(ratio, 1),
+            "ratio_cpu": round(naive_full_cpu / fast["cpu_seconds"], 1),
+            "load_average_1min": round(load_avg, 2),
+            "target_ratio": TARGET_RATIO,
+            "ok": bool(ok),
+            "note": f"naive path (row-by-row ORM, flush per row, one commit) timed on the first "
+            f"{naive['rows']:,} rows and extrapolated linearly to {n:,}; peak memory is the "
+            "fast child's whole-process max RSS; seconds are wall time (cpu_seconds: the child's "
+            f"CPU time, for a busy machine); cpus: {os.cpu_count()}",
+        }
+    ]
 
 
 def _child_main(argv: list[str]) -> None:

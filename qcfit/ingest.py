@@ -32,17 +32,22 @@ Rules of a load (one call = one store transaction):
 * One shift x line gets its counts either from events or from a counts file, never both:
   rows that would mix them are bad rows (they say which).
 * Every load that writes leaves one audit row in ``load``: kind, source, sha256 of the
-  bytes, rows accepted and rejected, corrections, when (``now``), OS user and host.
+  bytes, rows accepted and rejected, corrections, when (``now``), OS user and host; its
+  ``note`` keeps the notes (what was accepted and how) and the rejects file's path.
+* The file is read and checked before the store is touched; everything written (shifts,
+  events, counts, corrections, audit row, and the rejects file) happens in one
+  transaction, so a failure at any point leaves the store as it was.
 
 Pull (``[source]`` in the config): ``url`` is a SQLAlchemy URL (a relative SQLite path is
-relative to the config file's folder; SQLite sources are opened read-only), ``query`` returns columns
-named like an events file (``kind = "events"``) or a counts file (``kind = "counts"``) (use
-SQL aliases). The rows are rendered as CSV text and go through exactly the same checks; for
-a pull "line N" in a message means the N-th row of the query result. If the query contains
-``:since`` it is bound as text ``YYYY-MM-DD HH:MM:SS`` in UTC (the form SQLite's
-``datetime()`` returns); otherwise rows before ``since`` are dropped after validation.
-Values from the database: NULL is an empty cell; a naive datetime is plant-local time like
-a naive CSV timestamp; a whole float such as ``3.0`` is the integer 3.
+relative to the config file's folder; SQLite sources are opened read-only); ``query``
+returns columns named like an events file (``kind = "events"``) or a counts file
+(``kind = "counts"``) (use SQL aliases). The rows are rendered as CSV text and go through
+exactly the same checks; for a pull "line N" in a message means the N-th row of the query
+result. If the query contains ``:since`` it is bound as text ``YYYY-MM-DD HH:MM:SS`` in UTC
+(the form SQLite's ``datetime()`` returns); otherwise rows before ``since`` are dropped
+after validation. Values from the database: NULL is an empty cell; a naive datetime is
+plant-local time like a naive CSV timestamp; a whole float such as ``3.0`` is the
+integer 3.
 """
 
 from __future__ import annotations
@@ -150,7 +155,9 @@ class LoadReport:
             f"{self.load_id}; {len(self.shifts)} shift(s), {self.cells_written} count cell(s) "
             f"written, {self.corrections} correction(s)"
         ]
-        if self.kind != "counts" and (self.events_added or self.events_unchanged or self.events_restated):
+        if self.kind != "counts" and (
+            self.events_added or self.events_unchanged or self.events_restated
+        ):
             out.append(
                 f"events: {self.events_added} added, {self.events_unchanged} already stored, "
                 f"{self.events_restated} restated with a new quantity"
@@ -207,12 +214,22 @@ def load_events_file(
     """Load an events CSV (``timestamp,line,category[,quantity]``) in one transaction."""
     _require_aware(now)
     if ambiguous not in ("raise", "earlier", "later"):
-        raise InvalidArgumentError("ambiguous", f"must be raise, earlier or later, not {ambiguous!r}")
+        raise InvalidArgumentError(
+            "ambiguous", f"must be raise, earlier or later, not {ambiguous!r}"
+        )
     data = _read_file(path)
     target = Path(rejects) if rejects else default_rejects_path(path)
     return _load_events(
-        engine, config, data, kind="events", source=str(path), audit_source=str(Path(path).resolve()),
-        who=_Who(now, os_user, host), skip_bad=skip_bad, rejects=target, ambiguous=ambiguous,
+        engine,
+        config,
+        data,
+        kind="events",
+        source=str(path),
+        audit_source=str(Path(path).resolve()),
+        who=_Who(now, os_user, host),
+        skip_bad=skip_bad,
+        rejects=target,
+        ambiguous=ambiguous,
     )
 
 
@@ -232,8 +249,15 @@ def load_counts_file(
     data = _read_file(path)
     target = Path(rejects) if rejects else default_rejects_path(path)
     return _load_counts(
-        engine, config, data, kind="counts", source=str(path), audit_source=str(Path(path).resolve()),
-        who=_Who(now, os_user, host), skip_bad=skip_bad, rejects=target,
+        engine,
+        config,
+        data,
+        kind="counts",
+        source=str(path),
+        audit_source=str(Path(path).resolve()),
+        who=_Who(now, os_user, host),
+        skip_bad=skip_bad,
+        rejects=target,
     )
 
 
@@ -279,7 +303,9 @@ def _write_rejects(path: Path, table: RawTable, bad: Sequence[BadRow], *, row_nu
     try:
         path.write_text(buf.getvalue(), encoding="utf-8")
     except OSError as exc:
-        raise InvalidArgumentError("--rejects", f"cannot write {path}: {exc.strerror or exc}") from exc
+        raise InvalidArgumentError(
+            "--rejects", f"cannot write {path}: {exc.strerror or exc}"
+        ) from exc
     return str(path)
 
 
@@ -292,9 +318,19 @@ def _note_text(notes: Sequence[str], rejects: str | None) -> str | None:
 
 
 def _load_events(
-    engine: Any, config: Config, data: bytes, *, kind: str, source: str, audit_source: str,
-    who: _Who, skip_bad: bool, rejects: Path | None, ambiguous: Ambiguous,
-    since: dt.datetime | None = None, row_numbers: bool = False,
+    engine: Any,
+    config: Config,
+    data: bytes,
+    *,
+    kind: str,
+    source: str,
+    audit_source: str,
+    who: _Who,
+    skip_bad: bool,
+    rejects: Path | None,
+    ambiguous: Ambiguous,
+    since: dt.datetime | None = None,
+    row_numbers: bool = False,
 ) -> LoadReport:
     digest = hashlib.sha256(data).hexdigest()
     prior = _already_loaded(engine, kind, digest, source)
@@ -303,8 +339,12 @@ def _load_events(
     calendar = ShiftCalendar.from_config(config)
     table = read_table(data, source=source, required=EVENT_COLUMNS, optional=EVENT_OPTIONAL)
     batch = validate_events(
-        table, lines=config.lines, categories=config.categories, calendar=calendar,
-        now=who.at, ambiguous=ambiguous,
+        table,
+        lines=config.lines,
+        categories=config.categories,
+        calendar=calendar,
+        now=who.at,
+        ambiguous=ambiguous,
     )
     batch, notes = _events_since(batch, since)
     bad = _renumber(batch.bad_rows, row_numbers)
@@ -313,9 +353,21 @@ def _load_events(
         prior = find_load(conn, kind, digest)
         if prior is not None:
             return _already(prior, kind, source, digest)
-        return _store_events(conn, batch, table, bad, notes, kind=kind, source=source,
-                             audit_source=audit_source, digest=digest, who=who,
-                             skip_bad=skip_bad, rejects=rejects, row_numbers=row_numbers)
+        return _store_events(
+            conn,
+            batch,
+            table,
+            bad,
+            notes,
+            kind=kind,
+            source=source,
+            audit_source=audit_source,
+            digest=digest,
+            who=who,
+            skip_bad=skip_bad,
+            rejects=rejects,
+            row_numbers=row_numbers,
+        )
 
 
 def _renumber(bad: Sequence[BadRow], row_numbers: bool) -> list[BadRow]:
@@ -336,8 +388,22 @@ def _events_since(batch: EventBatch, since: dt.datetime | None) -> tuple[EventBa
     return EventBatch(events, batch.instances, batch.bad_rows, batch.notes, batch.rows_read), notes
 
 
-def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], notes: list[str], *,
-                  kind, source, audit_source, digest, who: _Who, skip_bad, rejects, row_numbers) -> LoadReport:
+def _store_events(
+    conn,
+    batch: EventBatch,
+    table: RawTable,
+    bad: list[BadRow],
+    notes: list[str],
+    *,
+    kind,
+    source,
+    audit_source,
+    digest,
+    who: _Who,
+    skip_bad,
+    rejects,
+    row_numbers,
+) -> LoadReport:
     ev = batch.events
     used = np.unique(ev["shift"].to_numpy())
     ids = ensure_shifts(conn, [batch.instances[int(i)] for i in used])
@@ -350,8 +416,15 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
         bad = sorted(bad + conflict_bad, key=lambda b: b.line_no)
         _stop_if_bad(source, bad, len(ev), skip_bad)
     new, restated, unchanged = _split_known(ev, existing)
-    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.at,
-                          os_user=who.os_user, host=who.host)
+    load_id = insert_load(
+        conn,
+        kind=kind,
+        source=audit_source,
+        content_hash=digest,
+        loaded=who.at,
+        os_user=who.os_user,
+        host=who.host,
+    )
     new = new.sort_values(["shift_id", "line", "ts_utc"], kind="stable")
     insert_events(conn, new, load_id)
     update_event_quantities(conn, restated[["id", "quantity"]], load_id)
@@ -360,22 +433,57 @@ def _store_events(conn, batch: EventBatch, table: RawTable, bad: list[BadRow], n
     corrections = _restated_cells(changes, restated)
     record_corrections(conn, load_id, corrections)
     rejects_path = _write_rejects(rejects, table, bad, row_numbers=row_numbers) if bad else None
-    stored_cells = set(zip(cells["shift_id"].tolist(), cells["line"].tolist(), cells["category"].tolist(), strict=True))
-    inserted = sum(k not in stored_cells for k in zip(totals["shift_id"].tolist(), totals["line"].tolist(), totals["category"].tolist(), strict=True))
-    update_load(conn, load_id, rows_accepted=len(ev), rows_rejected=len(bad),
-                corrections=len(corrections), note=_note_text(notes, rejects_path))
+    stored_cells = set(
+        zip(
+            cells["shift_id"].tolist(),
+            cells["line"].tolist(),
+            cells["category"].tolist(),
+            strict=True,
+        )
+    )
+    inserted = sum(
+        k not in stored_cells
+        for k in zip(
+            totals["shift_id"].tolist(),
+            totals["line"].tolist(),
+            totals["category"].tolist(),
+            strict=True,
+        )
+    )
+    update_load(
+        conn,
+        load_id,
+        rows_accepted=len(ev),
+        rows_rejected=len(bad),
+        corrections=len(corrections),
+        note=_note_text(notes, rejects_path),
+    )
     shift_ids = tuple(sorted(batch.instances[int(i)].id for i in np.unique(ev["shift"].to_numpy())))
     log.info("%s: load %d, %d events added, %d restated", source, load_id, len(new), len(restated))
     return LoadReport(
-        kind, source, digest, load_id, False, who.at, rows_read=batch.rows_read,
-        rows_accepted=len(ev), rows_rejected=len(bad), events_added=len(new),
-        events_unchanged=len(unchanged), events_restated=len(restated),
-        cells_written=inserted + len(changes), corrections=len(corrections), shifts=shift_ids,
-        rejects_path=rejects_path, notes=tuple(notes),
+        kind,
+        source,
+        digest,
+        load_id,
+        False,
+        who.at,
+        rows_read=batch.rows_read,
+        rows_accepted=len(ev),
+        rows_rejected=len(bad),
+        events_added=len(new),
+        events_unchanged=len(unchanged),
+        events_restated=len(restated),
+        cells_written=inserted + len(changes),
+        corrections=len(corrections),
+        shifts=shift_ids,
+        rejects_path=rejects_path,
+        notes=tuple(notes),
     )
 
 
-def _without_counted_lines(cells: pd.DataFrame, ev: pd.DataFrame, existing: pd.DataFrame, ids, row_numbers) -> tuple[pd.DataFrame, list[BadRow]]:
+def _without_counted_lines(
+    cells: pd.DataFrame, ev: pd.DataFrame, existing: pd.DataFrame, ids, row_numbers
+) -> tuple[pd.DataFrame, list[BadRow]]:
     """Events for a shift x line whose stored counts have no events (they came from a counts
     file, or another system wrote them) are bad rows."""
     if len(cells) == 0:
@@ -398,43 +506,74 @@ def _without_counted_lines(cells: pd.DataFrame, ev: pd.DataFrame, existing: pd.D
         s, li = pairs[pos]
         where = f"load {counted[(s, li)]}" if counted[(s, li)] is not None else "written directly"
         line_no = int(ev["line_no"].iloc[pos]) - (1 if row_numbers else 0)
-        bad.append(BadRow(line_no, f"shift {names[s]} line {li} already has per-shift counts ({where}); "
-                                   "events and per-shift counts cannot be mixed for one shift and line"))
+        bad.append(
+            BadRow(
+                line_no,
+                f"shift {names[s]} line {li} already has per-shift counts ({where}); "
+                "events and per-shift counts cannot be mixed for one shift and line",
+            )
+        )
     return ev[~clash].reset_index(drop=True), bad
 
 
-def _split_known(ev: pd.DataFrame, existing: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def _split_known(
+    ev: pd.DataFrame, existing: pd.DataFrame
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """(new events, stored events restated with a new quantity, events already stored as given)."""
     if len(existing) == 0:
         empty = ev.iloc[0:0].assign(id=np.array([], dtype=np.int64))
         return ev, empty, empty
     key = ["ts_utc", "line", "category"]
-    merged = ev.merge(existing[key + ["id", "quantity"]], on=key, how="left", suffixes=("", "_stored"))
+    merged = ev.merge(
+        existing[key + ["id", "quantity"]], on=key, how="left", suffixes=("", "_stored")
+    )
     known = merged["id"].notna().to_numpy()
     new = ev[~known]
     hits = merged[known].astype({"id": np.int64, "quantity_stored": np.int64})
     same = hits["quantity"].to_numpy() == hits["quantity_stored"].to_numpy()
-    return new, hits[~same].drop(columns="quantity_stored"), hits[same].drop(columns="quantity_stored")
+    return (
+        new,
+        hits[~same].drop(columns="quantity_stored"),
+        hits[same].drop(columns="quantity_stored"),
+    )
 
 
-def _event_totals(existing: pd.DataFrame, new: pd.DataFrame, restated: pd.DataFrame) -> pd.DataFrame:
+def _event_totals(
+    existing: pd.DataFrame, new: pd.DataFrame, restated: pd.DataFrame
+) -> pd.DataFrame:
     """Counts per shift x line x category over all events of the touched shift x line pairs."""
     cols = ["shift_id", "line", "category", "quantity"]
-    touched = pd.concat([new[["shift_id", "line"]], restated[["shift_id", "line"]]]).drop_duplicates()
+    touched = pd.concat(
+        [new[["shift_id", "line"]], restated[["shift_id", "line"]]]
+    ).drop_duplicates()
     stored = existing
     if len(restated):
         q = dict(zip(restated["id"].tolist(), restated["quantity"].tolist(), strict=True))
-        stored = existing.assign(quantity=[q.get(i, v) for i, v in zip(existing["id"].tolist(), existing["quantity"].tolist(), strict=True)])
+        stored = existing.assign(
+            quantity=[
+                q.get(i, v)
+                for i, v in zip(existing["id"].tolist(), existing["quantity"].tolist(), strict=True)
+            ]
+        )
     stored = stored.merge(touched, on=["shift_id", "line"], how="inner")
     allev = pd.concat([stored[cols], new[cols]], ignore_index=True)
-    totals = allev.groupby(["shift_id", "line", "category"], sort=True, as_index=False)["quantity"].sum()
+    totals = allev.groupby(["shift_id", "line", "category"], sort=True, as_index=False)[
+        "quantity"
+    ].sum()
     return totals.rename(columns={"quantity": "count"}).astype({"count": np.int64})
 
 
 def _restated_cells(changes: Sequence[Correction], restated: pd.DataFrame) -> list[Correction]:
     if len(restated) == 0:
         return []
-    cells = set(zip(restated["shift_id"].tolist(), restated["line"].tolist(), restated["category"].tolist(), strict=True))
+    cells = set(
+        zip(
+            restated["shift_id"].tolist(),
+            restated["line"].tolist(),
+            restated["category"].tolist(),
+            strict=True,
+        )
+    )
     return [c for c in changes if (c.shift_row_id, c.line, c.category) in cells]
 
 
@@ -442,8 +581,17 @@ def _restated_cells(changes: Sequence[Correction], restated: pd.DataFrame) -> li
 
 
 def _load_counts(
-    engine: Any, config: Config, data: bytes, *, kind: str, source: str, audit_source: str,
-    who: _Who, skip_bad: bool, rejects: Path | None, since: dt.datetime | None = None,
+    engine: Any,
+    config: Config,
+    data: bytes,
+    *,
+    kind: str,
+    source: str,
+    audit_source: str,
+    who: _Who,
+    skip_bad: bool,
+    rejects: Path | None,
+    since: dt.datetime | None = None,
     row_numbers: bool = False,
 ) -> LoadReport:
     digest = hashlib.sha256(data).hexdigest()
@@ -452,8 +600,9 @@ def _load_counts(
         return prior
     calendar = ShiftCalendar.from_config(config)
     table = read_table(data, source=source, required=COUNT_COLUMNS, optional=COUNT_OPTIONAL)
-    batch = validate_counts(table, lines=config.lines, categories=config.categories,
-                            calendar=calendar, now=who.at)
+    batch = validate_counts(
+        table, lines=config.lines, categories=config.categories, calendar=calendar, now=who.at
+    )
     batch, notes = _counts_since(batch, since)
     bad = _renumber(batch.bad_rows, row_numbers)
     _stop_if_bad(source, bad, len(batch.counts), skip_bad)
@@ -461,9 +610,21 @@ def _load_counts(
         prior = find_load(conn, kind, digest)
         if prior is not None:
             return _already(prior, kind, source, digest)
-        return _store_counts(conn, batch, table, bad, notes, kind=kind, source=source,
-                             audit_source=audit_source, digest=digest, who=who,
-                             skip_bad=skip_bad, rejects=rejects, row_numbers=row_numbers)
+        return _store_counts(
+            conn,
+            batch,
+            table,
+            bad,
+            notes,
+            kind=kind,
+            source=source,
+            audit_source=audit_source,
+            digest=digest,
+            who=who,
+            skip_bad=skip_bad,
+            rejects=rejects,
+            row_numbers=row_numbers,
+        )
 
 
 def _counts_since(batch: CountBatch, since: dt.datetime | None) -> tuple[CountBatch, list[str]]:
@@ -475,13 +636,30 @@ def _counts_since(batch: CountBatch, since: dt.datetime | None) -> tuple[CountBa
         return batch, notes
     counts = batch.counts[~batch.counts["shift"].isin(list(early))].reset_index(drop=True)
     units = batch.units[~batch.units["shift"].isin(list(early))].reset_index(drop=True)
-    notes.append(f"{len(batch.counts) - len(counts)} row(s) of shifts starting before {since.isoformat()} left out")
+    notes.append(
+        f"{len(batch.counts) - len(counts)} row(s) of shifts starting before "
+        f"{since.isoformat()} left out"
+    )
     instances = {k: v for k, v in batch.instances.items() if k not in early}
     return CountBatch(counts, units, instances, batch.bad_rows, batch.notes, batch.rows_read), notes
 
 
-def _store_counts(conn, batch: CountBatch, table: RawTable, bad: list[BadRow], notes: list[str], *,
-                  kind, source, audit_source, digest, who: _Who, skip_bad, rejects, row_numbers) -> LoadReport:
+def _store_counts(
+    conn,
+    batch: CountBatch,
+    table: RawTable,
+    bad: list[BadRow],
+    notes: list[str],
+    *,
+    kind,
+    source,
+    audit_source,
+    digest,
+    who: _Who,
+    skip_bad,
+    rejects,
+    row_numbers,
+) -> LoadReport:
     ids = ensure_shifts(conn, list(batch.instances.values()))
     counts = batch.counts.assign(shift_id=batch.counts["shift"].map(ids).astype(np.int64))
     units = batch.units.assign(shift_id=batch.units["shift"].map(ids).astype(np.int64))
@@ -489,26 +667,52 @@ def _store_counts(conn, batch: CountBatch, table: RawTable, bad: list[BadRow], n
     if clash_bad:
         bad = sorted(bad + clash_bad, key=lambda b: b.line_no)
         _stop_if_bad(source, bad, len(counts), skip_bad)
-    load_id = insert_load(conn, kind=kind, source=audit_source, content_hash=digest, loaded=who.at,
-                          os_user=who.os_user, host=who.host)
+    load_id = insert_load(
+        conn,
+        kind=kind,
+        source=audit_source,
+        content_hash=digest,
+        loaded=who.at,
+        os_user=who.os_user,
+        host=who.host,
+    )
     before = len(count_cells(conn, ids.values()))
     cell_changes = write_counts(conn, counts[["shift_id", "line", "category", "count"]], load_id)
     unit_changes = write_units(conn, units[["shift_id", "line", "units"]], load_id)
     inserted = len(count_cells(conn, ids.values())) - before
     corrections = len(cell_changes) + len(unit_changes)
     rejects_path = _write_rejects(rejects, table, bad, row_numbers=row_numbers) if bad else None
-    update_load(conn, load_id, rows_accepted=len(counts), rows_rejected=len(bad),
-                corrections=corrections, note=_note_text(notes, rejects_path))
+    update_load(
+        conn,
+        load_id,
+        rows_accepted=len(counts),
+        rows_rejected=len(bad),
+        corrections=corrections,
+        note=_note_text(notes, rejects_path),
+    )
     log.info("%s: load %d, %d cells, %d corrections", source, load_id, len(counts), corrections)
     return LoadReport(
-        kind, source, digest, load_id, False, who.at, rows_read=batch.rows_read,
-        rows_accepted=len(counts), rows_rejected=len(bad), cells_written=inserted + len(cell_changes),
-        units_written=len(units), corrections=corrections,
-        shifts=tuple(sorted(set(counts["shift"]))), rejects_path=rejects_path, notes=tuple(notes),
+        kind,
+        source,
+        digest,
+        load_id,
+        False,
+        who.at,
+        rows_read=batch.rows_read,
+        rows_accepted=len(counts),
+        rows_rejected=len(bad),
+        cells_written=inserted + len(cell_changes),
+        units_written=len(units),
+        corrections=corrections,
+        shifts=tuple(sorted(set(counts["shift"]))),
+        rejects_path=rejects_path,
+        notes=tuple(notes),
     )
 
 
-def _without_event_lines(conn, counts: pd.DataFrame, units: pd.DataFrame, ids, row_numbers) -> tuple[pd.DataFrame, pd.DataFrame, list[BadRow]]:
+def _without_event_lines(
+    conn, counts: pd.DataFrame, units: pd.DataFrame, ids, row_numbers
+) -> tuple[pd.DataFrame, pd.DataFrame, list[BadRow]]:
     """Count rows for a shift x line that has raw events are bad rows."""
     evented = event_lines(conn, ids.values())
     if not evented:
@@ -518,13 +722,22 @@ def _without_event_lines(conn, counts: pd.DataFrame, units: pd.DataFrame, ids, r
     if not clash.any():
         return counts, units, []
     bad = [
-        BadRow(int(counts["line_no"].iloc[i]) - (1 if row_numbers else 0),
-               f"shift {counts['shift'].iloc[i]} line {counts['line'].iloc[i]} has raw defect events "
-               "(its counts are derived from them); correct it by loading events, not counts")
+        BadRow(
+            int(counts["line_no"].iloc[i]) - (1 if row_numbers else 0),
+            f"shift {counts['shift'].iloc[i]} line {counts['line'].iloc[i]} has raw defect events "
+            "(its counts are derived from them); correct it by loading events, not counts",
+        )
         for i in np.flatnonzero(clash)
     ]
-    keep_units = [(s, li) not in evented for s, li in zip(units["shift_id"].tolist(), units["line"].tolist(), strict=True)]
-    return counts[~clash].reset_index(drop=True), units[np.asarray(keep_units, dtype=bool)].reset_index(drop=True), bad
+    keep_units = [
+        (s, li) not in evented
+        for s, li in zip(units["shift_id"].tolist(), units["line"].tolist(), strict=True)
+    ]
+    return (
+        counts[~clash].reset_index(drop=True),
+        units[np.asarray(keep_units, dtype=bool)].reset_index(drop=True),
+        bad,
+    )
 
 
 # --- pull ---------------------------------------------------------------------------------
@@ -550,8 +763,10 @@ def pull(
     _require_aware(now)
     source = config.source
     if source is None:
-        raise ConfigError([Problem("source", "no [source] section: give url, query and kind to pull from")],
-                          str(config.path) if config.path else None)
+        raise ConfigError(
+            [Problem("source", "no [source] section: give url, query and kind to pull from")],
+            str(config.path) if config.path else None,
+        )
     if since is None:
         since = now - DEFAULT_PULL_LOOKBACK
     _require_aware(since)
@@ -559,14 +774,22 @@ def pull(
         raise InvalidArgumentError("rejects", "a pull with skip_bad needs a rejects file path")
     since_text = since.astimezone(dt.UTC).strftime("%Y-%m-%d %H:%M:%S")
     base = Path(config.path).parent if config.path else None
-    columns, rows, bound = fetch_source_rows(source.url, source.query, {"since": since_text}, base_dir=base)
+    columns, rows, bound = fetch_source_rows(
+        source.url, source.query, {"since": since_text}, base_dir=base
+    )
     data = render_rows(columns, rows)
     label = f"[source] query result ({_shown(source.url)})"
     binds_since = "since" in bound
-    common = dict(kind="pull", source=label, audit_source=f"pull {source.kind}: {_shown(source.url)}",
-                  who=_Who(now, os_user, host), skip_bad=skip_bad,
-                  rejects=Path(rejects) if rejects else None,
-                  since=None if binds_since else since, row_numbers=True)
+    common = dict(
+        kind="pull",
+        source=label,
+        audit_source=f"pull {source.kind}: {_shown(source.url)}",
+        who=_Who(now, os_user, host),
+        skip_bad=skip_bad,
+        rejects=Path(rejects) if rejects else None,
+        since=None if binds_since else since,
+        row_numbers=True,
+    )
     if not rows:
         return _empty_pull(label, data, now)
     if source.kind == "events":
@@ -576,8 +799,15 @@ def pull(
 
 def _empty_pull(label: str, data: bytes, now: dt.datetime) -> LoadReport:
     log.info("%s: the query returned no rows", label)
-    return LoadReport("pull", label, hashlib.sha256(data).hexdigest(), None, False, now,
-                      notes=("the query returned no rows; nothing was loaded",))
+    return LoadReport(
+        "pull",
+        label,
+        hashlib.sha256(data).hexdigest(),
+        None,
+        False,
+        now,
+        notes=("the query returned no rows; nothing was loaded",),
+    )
 
 
 def _shown(url: str) -> str:
@@ -605,7 +835,11 @@ def _cell(value: Any) -> str:
         return value.isoformat()
     if isinstance(value, bool):
         return str(int(value))
-    if isinstance(value, float | decimal.Decimal) and value == value and value not in (float("inf"), float("-inf")):
+    if (
+        isinstance(value, float | decimal.Decimal)
+        and value == value
+        and value not in (float("inf"), float("-inf"))
+    ):
         if value == int(value):
             return str(int(value))
     if isinstance(value, bytes):

@@ -84,7 +84,9 @@ def decode_utf8(data: bytes, source: str) -> tuple[str, list[str]]:
     except UnicodeDecodeError:
         raise InputFileError(source, _non_utf8_lines(data)) from None
     if not text.strip():
-        raise InputFileError(source, reason="the file is empty (expected a header line and data rows)")
+        raise InputFileError(
+            source, reason="the file is empty (expected a header line and data rows)"
+        )
     return text, notes
 
 
@@ -128,7 +130,13 @@ def _plain_line_ends(text: str) -> bool:
     return cr == 0 or cr == text.count("\r\n")
 
 
-def _header(fields: Sequence[str], line_no: int, source: str, required: Sequence[str], optional: Sequence[str]) -> tuple[str, ...]:
+def _header(
+    fields: Sequence[str],
+    line_no: int,
+    source: str,
+    required: Sequence[str],
+    optional: Sequence[str],
+) -> tuple[str, ...]:
     names = tuple(f.strip().lower() for f in fields)
     known = tuple(required) + tuple(optional)
     expected = ",".join(required) + "".join(f"[,{o}]" for o in optional)
@@ -226,7 +234,11 @@ def _read_by_lines(text: str, source: str, required, optional, notes: list[str])
     ]
     keep = ~blank & ~wrong
     kept = body[keep]
-    frame = _parse(io.StringIO("\n".join(kept.tolist())), columns) if len(kept) else _empty_frame(columns)
+    frame = (
+        _parse(io.StringIO("\n".join(kept.tolist())), columns)
+        if len(kept)
+        else _empty_frame(columns)
+    )
     if len(frame) != int(keep.sum()):  # the parser disagreed with the line split: be exact
         return _read_with_csv_module(text, source, required, optional, notes)
     _note_blank(notes, int(blank.sum()) + first)  # blank lines before the header too
@@ -262,14 +274,20 @@ def _read_with_csv_module(text: str, source: str, required, optional, notes: lis
             line_nos.append(start)
         start = reader.line_num + 1
     if columns is None:  # only malformed lines
-        raise InputFileError(source, bad) if bad else InputFileError(source, reason="the file is empty")
+        raise (
+            InputFileError(source, bad)
+            if bad
+            else InputFileError(source, reason="the file is empty")
+        )
     if rows:
         cells = list(zip(*rows, strict=True))
         frame = pd.DataFrame({c: pd.array(cells[i], dtype="str") for i, c in enumerate(columns)})
     else:
         frame = _empty_frame(columns)
     _note_blank(notes, blank)
-    return _finish(source, columns, frame, np.asarray(line_nos, dtype=np.int64), bad, notes, text, header_line)
+    return _finish(
+        source, columns, frame, np.asarray(line_nos, dtype=np.int64), bad, notes, text, header_line
+    )
 
 
 def _empty_frame(columns: Sequence[str]) -> pd.DataFrame:
@@ -283,7 +301,9 @@ def _note_blank(notes: list[str], blank: int) -> None:
 
 def _finish(source, columns, frame, line_nos, bad, notes, text, header_line: int) -> RawTable:
     if len(frame) == 0 and not bad:
-        raise InputFileError(source, reason=f"the file has a header (line {header_line}) but no data rows")
+        raise InputFileError(
+            source, reason=f"the file has a header (line {header_line}) but no data rows"
+        )
     line_nos = np.asarray(line_nos, dtype=np.int64)
     line_nos.setflags(write=False)
     frame = frame.reset_index(drop=True)

@@ -18,8 +18,9 @@ Events (``timestamp,line,category[,quantity]``):
 
 * ``timestamp`` is ISO 8601 date and time, ``YYYY-MM-DD`` then ``T`` or a space, then
   ``HH:MM[:SS[.ffffff]]``, then optionally ``Z`` or an offset ``+HH:MM`` / ``+HHMM`` /
-  ``+HH`` (see :mod:`qcfit.ingest_time`). With an offset it is converted (any zone's offset is accepted; a note counts
-  those that differ from the plant zone's offset at that instant). Without an offset it is
+  ``+HH`` (see :mod:`qcfit.ingest_time`). With an offset it is converted (any zone's
+  offset is accepted; a note counts those that differ from the plant zone's offset at
+  that instant). Without an offset it is
   plant-local wall time: a time that does not exist (skipped at a spring change) is a bad
   row; one that occurs twice (autumn change) is a bad row unless ``ambiguous`` is
   ``"earlier"`` or ``"later"`` (the first or second occurrence);
@@ -171,7 +172,9 @@ class _Column:
         return table[self.codes]
 
 
-def _check_codes(problems: _Problems, col: _Column, known: Collection[str], what: str) -> np.ndarray:
+def _check_codes(
+    problems: _Problems, col: _Column, known: Collection[str], what: str
+) -> np.ndarray:
     """Mark empty and unknown codes; return the mask of good cells."""
     by_fold = {k.casefold(): k for k in known}
 
@@ -192,7 +195,9 @@ def _section(what: str) -> str:
     return "lines" if what == "line" else "categories"
 
 
-def _whole_numbers(problems: _Problems, col: _Column, what: str, *, allow_empty: bool = False) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _whole_numbers(
+    problems: _Problems, col: _Column, what: str, *, allow_empty: bool = False
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Digit-only cells as int64 (0 where bad or empty); returns (values, good, non-empty).
 
     Empty cells are good only with ``allow_empty``.
@@ -213,8 +218,10 @@ def _number_reason(text: str, what: str, allow_empty: bool) -> str | None:
         return None if allow_empty else f"{what} is empty"
     if _DIGITS_RE.fullmatch(text):
         if len(text) > 10 or int(text) > MAX_COUNT:
-            return (f"{what} {text} is larger than {MAX_COUNT:,} (not a plausible count for one "
-                    "row: a unit or export error?)")
+            return (
+                f"{what} {text} is larger than {MAX_COUNT:,} (not a plausible count for one "
+                "row: a unit or export error?)"
+            )
         return None
     return f"{what} {text!r} {_number_problem(text)}"
 
@@ -233,26 +240,34 @@ def _number_problem(text: str) -> str:
     return "must be written as a whole number with digits only (no sign, decimals or exponent)"
 
 
-def _check_timestamps(problems: _Problems, values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous) -> ParsedStamps:
+def _check_timestamps(
+    problems: _Problems, values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous
+) -> ParsedStamps:
     """Parse the timestamp column and add a reason for every cell that is not an instant."""
     p = parse_timestamps(values, tz, ambiguous)
     arr = p.text
     problems.add(p.empty, "timestamp is empty")
     problems.add(
         p.malformed,
-        lambda i: f"timestamp {arr[i]!r} is not an ISO 8601 date and time "
-        "(e.g. 2026-01-05T06:30:00-06:00 or 2026-01-05 06:30:00)",
+        lambda i: (
+            f"timestamp {arr[i]!r} is not an ISO 8601 date and time "
+            "(e.g. 2026-01-05T06:30:00-06:00 or 2026-01-05 06:30:00)"
+        ),
     )
     problems.add(p.invalid, lambda i: f"timestamp {arr[i]!r} is not a valid date and time")
     problems.add(
         p.skipped,
-        lambda i: f"timestamp {arr[i]!r} does not exist in {tz.key} (the clocks skip that "
-        "hour); give the offset",
+        lambda i: (
+            f"timestamp {arr[i]!r} does not exist in {tz.key} (the clocks skip that "
+            "hour); give the offset"
+        ),
     )
     problems.add(
         p.repeated,
-        lambda i: f"timestamp {arr[i]!r} occurs twice in {tz.key} (the clocks repeat that "
-        "hour); give the offset, or load with --ambiguous earlier|later",
+        lambda i: (
+            f"timestamp {arr[i]!r} occurs twice in {tz.key} (the clocks repeat that "
+            "hour); give the offset, or load with --ambiguous earlier|later"
+        ),
     )
     return p
 
@@ -263,7 +278,9 @@ def _utc64(ts: dt.datetime) -> np.datetime64:
     return np.datetime64(ts.astimezone(dt.UTC).replace(tzinfo=None), "us")
 
 
-def _mark_duplicates(problems: _Problems, keys: pd.DataFrame, line_nos: np.ndarray, what: str) -> None:
+def _mark_duplicates(
+    problems: _Problems, keys: pd.DataFrame, line_nos: np.ndarray, what: str
+) -> None:
     """Mark every row whose key repeats an earlier row's key (only among ``keys``' rows)."""
     dup = keys.duplicated(keep=False).to_numpy()
     if not dup.any():
@@ -277,7 +294,9 @@ def _mark_duplicates(problems: _Problems, keys: pd.DataFrame, line_nos: np.ndarr
         if group not in first_line:
             first_line[group] = int(line_nos[index])
             continue
-        problems.add(_one(problems.n, index), f"duplicate of line {first_line[group]} (same {what})")
+        problems.add(
+            _one(problems.n, index), f"duplicate of line {first_line[group]} (same {what})"
+        )
 
 
 def _one(n: int, i: int) -> np.ndarray:
@@ -315,8 +334,10 @@ def validate_events(
     future = ok_ts & (utc > limit)
     problems.add(
         future,
-        lambda i: f"timestamp {ts_text[i]!r} is later than the time of loading "
-        f"({now.astimezone(dt.UTC):%Y-%m-%d %H:%M} UTC); check the date and the offset",
+        lambda i: (
+            f"timestamp {ts_text[i]!r} is later than the time of loading "
+            f"({now.astimezone(dt.UTC):%Y-%m-%d %H:%M} UTC); check the date and the offset"
+        ),
     )
     too_old = ok_ts & (utc < _utc64(EARLIEST))
     problems.add(
@@ -328,12 +349,19 @@ def validate_events(
     nowhere = placed & (shift < 0)
     problems.add(
         nowhere,
-        lambda i: f"timestamp {ts_text[i]!r} falls in no shift of the calendar "
-        "(between shifts or on a non-production day)",
+        lambda i: (
+            f"timestamp {ts_text[i]!r} falls in no shift of the calendar "
+            "(between shifts or on a non-production day)"
+        ),
     )
     good = ok_line & ok_cat & ok_q & placed & ~nowhere
     keys = pd.DataFrame({"t": utc.view(np.int64), "l": line_col.codes, "c": cat_col.codes})
-    _mark_duplicates(problems, keys[good], table.line_nos, "timestamp, line and category; put the total in quantity")
+    _mark_duplicates(
+        problems,
+        keys[good],
+        table.line_nos,
+        "timestamp, line and category; put the total in quantity",
+    )
     good &= ~problems.bad_mask()
     events = pd.DataFrame(
         {
@@ -357,7 +385,9 @@ def validate_events(
     return EventBatch(events, tuple(instances), tuple(bad), tuple(notes), table.records)
 
 
-def _assign(calendar: Calendar, utc: np.ndarray, placed: np.ndarray) -> tuple[list[ShiftInstance], np.ndarray]:
+def _assign(
+    calendar: Calendar, utc: np.ndarray, placed: np.ndarray
+) -> tuple[list[ShiftInstance], np.ndarray]:
     shift = np.full(len(utc), -1, dtype=np.int64)
     if not placed.any():
         return [], shift
@@ -396,7 +426,9 @@ def validate_counts(
     if "units_inspected" in frame:
         units_col = _Column.of(frame["units_inspected"])
         spaced += units_col.spaced
-        units = _check_units(problems, units_col, shift_ids, line_codes, ok_shift & ok_line, table.line_nos)
+        units = _check_units(
+            problems, units_col, shift_ids, line_codes, ok_shift & ok_line, table.line_nos
+        )
     good &= ~problems.bad_mask()
     counts = pd.DataFrame(
         {
@@ -429,7 +461,9 @@ def _empty_units() -> pd.DataFrame:
     )
 
 
-def _check_shifts(problems: _Problems, col: _Column, calendar: Calendar, now: dt.datetime) -> tuple[dict[str, ShiftInstance], np.ndarray]:
+def _check_shifts(
+    problems: _Problems, col: _Column, calendar: Calendar, now: dt.datetime
+) -> tuple[dict[str, ShiftInstance], np.ndarray]:
     reasons: list[str | None] = []
     instances: dict[str, ShiftInstance] = {}
     for text in col.uniques:
@@ -451,7 +485,10 @@ def _one_shift(text: str, calendar: Calendar, now: dt.datetime) -> tuple[str, Sh
         except ValueError:
             date = None
     if match is None or date is None:
-        return f"shift {text!r} is not a shift id (start date and shift name, e.g. 2026-01-05_A)", None
+        return (
+            f"shift {text!r} is not a shift id (start date and shift name, e.g. 2026-01-05_A)",
+            None,
+        )
     try:
         inst = calendar.instance(date, match.group(2))
     except QcfitError as exc:
@@ -463,10 +500,19 @@ def _one_shift(text: str, calendar: Calendar, now: dt.datetime) -> tuple[str, Sh
     return "", inst
 
 
-def _check_units(problems: _Problems, col: _Column, shift_ids: np.ndarray, line_codes: np.ndarray, placed: np.ndarray, line_nos: np.ndarray) -> pd.DataFrame:
+def _check_units(
+    problems: _Problems,
+    col: _Column,
+    shift_ids: np.ndarray,
+    line_codes: np.ndarray,
+    placed: np.ndarray,
+    line_nos: np.ndarray,
+) -> pd.DataFrame:
     units, ok, filled = _whole_numbers(problems, col, "units_inspected", allow_empty=True)
     given = ok & placed & filled
-    frame = pd.DataFrame({"shift": shift_ids, "line": line_codes, "units": units, "line_no": line_nos})[given]
+    frame = pd.DataFrame(
+        {"shift": shift_ids, "line": line_codes, "units": units, "line_no": line_nos}
+    )[given]
     first = frame.drop_duplicates(["shift", "line"], keep="first")
     merged = frame.merge(first, on=["shift", "line"], suffixes=("", "_first"))
     differ = merged[merged["units"] != merged["units_first"]]

@@ -47,7 +47,9 @@ class ParsedStamps:
         return ~np.isnat(self.utc)
 
 
-def localize_naive(wall: np.ndarray, tz: ZoneInfo, ambiguous: Ambiguous) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def localize_naive(
+    wall: np.ndarray, tz: ZoneInfo, ambiguous: Ambiguous
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Plant-local naive wall times -> UTC, vectorised and exact for any zone.
 
     ``wall`` is datetime64[us]. Candidate offsets are the zone's offsets 14 h before and
@@ -107,7 +109,9 @@ class _Stamps:
             spaced += stripped != text[i]
             text[i], length[i] = stripped, len(stripped)
         chars = _char_matrix(text, length)
-        edge = _is_space(chars[:, 0]) | _is_space(chars[np.arange(len(text)), np.maximum(length - 1, 0)])
+        edge = _is_space(chars[:, 0]) | _is_space(
+            chars[np.arange(len(text)), np.maximum(length - 1, 0)]
+        )
         if edge.any():
             spaced += int(edge.sum())
             for i in np.flatnonzero(edge):
@@ -154,10 +158,14 @@ def _iso_shape(st: _Stamps) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     ok = (L >= MIN_TS_LENGTH) & (L <= MAX_TS_LENGTH)
     for k in (0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15):
         ok &= _is_digit(c[:, k])
-    ok &= (c[:, 4] == 45) & (c[:, 7] == 45) & (c[:, 13] == 58) & ((c[:, 10] == 84) | (c[:, 10] == 32))
+    ok &= (
+        (c[:, 4] == 45) & (c[:, 7] == 45) & (c[:, 13] == 58) & ((c[:, 10] == 84) | (c[:, 10] == 32))
+    )
     last = st.at(L - 1)
     zulu = (last == 90) | (last == 122)
-    sign6, sign5, sign3 = (np.isin(st.at(L - k), (43, 45)) & (L - k >= MIN_TS_LENGTH) for k in (6, 5, 3))
+    sign6, sign5, sign3 = (
+        np.isin(st.at(L - k), (43, 45)) & (L - k >= MIN_TS_LENGTH) for k in (6, 5, 3)
+    )
     colon6 = sign6 & (st.at(L - 3) == 58)
     d = {k: _is_digit(st.at(L - k)) for k in (1, 2, 4, 5)}
     form6 = colon6 & d[5] & d[4] & d[2] & d[1]
@@ -181,7 +189,11 @@ def _offset_minutes(st: _Stamps, L: np.ndarray, off_len: np.ndarray) -> np.ndarr
         return st.at(pos).astype(np.int64) - 48
 
     hours = digit(start + 1) * 10 + digit(start + 2)
-    mins = np.select([off_len == 6, off_len == 5], [digit(start + 4) * 10 + digit(start + 5), digit(start + 3) * 10 + digit(start + 4)], 0)
+    mins = np.select(
+        [off_len == 6, off_len == 5],
+        [digit(start + 4) * 10 + digit(start + 5), digit(start + 3) * 10 + digit(start + 4)],
+        0,
+    )
     sign = np.where(st.at(start) == 45, -1, 1)
     return np.where(np.isin(off_len, (3, 5, 6)), sign * (hours * 60 + mins), 0)
 
@@ -193,15 +205,21 @@ def parse_timestamps(values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous) -> P
     utc = np.full(n, np.datetime64("NaT"), dtype="datetime64[us]")
     shape_ok, has_offset, minutes = _iso_shape(st)
     empty = st.length == 0
-    parsed = pd.to_datetime(pd.Series(np.where(shape_ok, st.text, None), dtype=object), utc=True,
-                            format="ISO8601", errors="coerce")
+    parsed = pd.to_datetime(
+        pd.Series(np.where(shape_ok, st.text, None), dtype=object),
+        utc=True,
+        format="ISO8601",
+        errors="coerce",
+    )
     stamps = pd.DatetimeIndex(parsed).tz_localize(None).as_unit("us").to_numpy()
     invalid = shape_ok & np.isnat(stamps)
     other_zone = np.zeros(n, dtype=bool)
     with_off = shape_ok & ~invalid & has_offset
     if with_off.any():
         utc[with_off] = stamps[with_off]
-        plant = _offset_at(pd.DatetimeIndex(stamps[with_off]), tz).to_numpy() // np.timedelta64(1, "m")
+        plant = _offset_at(pd.DatetimeIndex(stamps[with_off]), tz).to_numpy() // np.timedelta64(
+            1, "m"
+        )
         other_zone[with_off] = minutes[with_off] != plant
     naive = shape_ok & ~invalid & ~has_offset
     skipped = np.zeros(n, dtype=bool)
@@ -212,5 +230,6 @@ def parse_timestamps(values: pd.Series, tz: ZoneInfo, ambiguous: Ambiguous) -> P
         utc[idx] = np.where(gap | twice, np.datetime64("NaT"), local)
         skipped[idx[gap]] = True
         repeated[idx[twice]] = True
-    return ParsedStamps(utc, empty, ~empty & ~shape_ok, invalid, skipped, repeated, other_zone,
-                        st.text, st.spaced)
+    return ParsedStamps(
+        utc, empty, ~empty & ~shape_ok, invalid, skipped, repeated, other_zone, st.text, st.spaced
+    )

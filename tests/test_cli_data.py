@@ -31,27 +31,71 @@ def put(tmp_path, name: str, data: str | bytes):
 
 HEADER = "timestamp,line,category,quantity\n"
 EVENT_CASES = [
-    pytest.param(HEADER + "2026-01-05 07:00,L9,SCR,1\n", ["line 2: unknown line 'L9' (not in [lines] of the config)"], id="unknown-line"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,XX,1\n", ["line 2: unknown category 'XX' (not in [categories] of the config)"], id="unknown-category"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,SCR,-1\n", ["line 2: quantity '-1' is negative"], id="negative"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,SCR,0.5\n", ["line 2: quantity '0.5' is not a whole number"], id="fractional"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,SCR,1000000000000\n",
-                 ["line 2: quantity 1000000000000 is larger than 1,000,000,000 (not a plausible count for one row: a unit or export error?)"],
-                 id="ten-to-the-twelve"),
-    pytest.param(HEADER + "yesterday,L1,SCR,1\n",
-                 ["line 2: timestamp 'yesterday' is not an ISO 8601 date and time (e.g. 2026-01-05T06:30:00-06:00 or 2026-01-05 06:30:00)"],
-                 id="bad-timestamp"),
-    pytest.param(HEADER + "2026-11-01 01:30,L1,SCR,1\n",
-                 ["line 2: timestamp '2026-11-01 01:30' occurs twice in America/Chicago (the clocks repeat that hour); give the offset, or load with --ambiguous earlier|later"],
-                 id="ambiguous"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,SCR,1\n2026-01-05T13:00Z,L1,SCR,2\n",
-                 ["line 3: duplicate of line 2 (same timestamp, line and category; put the total in quantity)"], id="duplicate-key"),
-    pytest.param(HEADER + "2026-01-05 07:00,L1,SCR,1\n2026-01-05 08:00,L1\n2026-01-05 09:00,L1,SCR,1,9\n",
-                 ["line 3: expected 4 fields, found 2", "line 4: expected 4 fields, found 5"], id="malformed-fields"),
-    pytest.param(HEADER + '2026-01-05 07:00,L1,SCR,1\n"2026-01-05 08:00"x,L1,SCR,1\n',
-                 ["line 3: malformed CSV (',' expected after '\"'); check the quotes on this line"], id="malformed-quote"),
-    pytest.param((HEADER + "2026-01-05 07:00,Lé,SCR,1\n").encode("cp1252"),
-                 ["line 2: not UTF-8 text (byte 0xE9 at column 19); save the file as UTF-8 (in a spreadsheet: CSV UTF-8)"], id="not-utf8"),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L9,SCR,1\n",
+        ["line 2: unknown line 'L9' (not in [lines] of the config)"],
+        id="unknown-line",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,XX,1\n",
+        ["line 2: unknown category 'XX' (not in [categories] of the config)"],
+        id="unknown-category",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,SCR,-1\n",
+        ["line 2: quantity '-1' is negative"],
+        id="negative",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,SCR,0.5\n",
+        ["line 2: quantity '0.5' is not a whole number"],
+        id="fractional",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,SCR,1000000000000\n",
+        [
+            "line 2: quantity 1000000000000 is larger than 1,000,000,000 (not a plausible count for one row: a unit or export error?)"
+        ],
+        id="ten-to-the-twelve",
+    ),
+    pytest.param(
+        HEADER + "yesterday,L1,SCR,1\n",
+        [
+            "line 2: timestamp 'yesterday' is not an ISO 8601 date and time (e.g. 2026-01-05T06:30:00-06:00 or 2026-01-05 06:30:00)"
+        ],
+        id="bad-timestamp",
+    ),
+    pytest.param(
+        HEADER + "2026-11-01 01:30,L1,SCR,1\n",
+        [
+            "line 2: timestamp '2026-11-01 01:30' occurs twice in America/Chicago (the clocks repeat that hour); give the offset, or load with --ambiguous earlier|later"
+        ],
+        id="ambiguous",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,SCR,1\n2026-01-05T13:00Z,L1,SCR,2\n",
+        [
+            "line 3: duplicate of line 2 (same timestamp, line and category; put the total in quantity)"
+        ],
+        id="duplicate-key",
+    ),
+    pytest.param(
+        HEADER + "2026-01-05 07:00,L1,SCR,1\n2026-01-05 08:00,L1\n2026-01-05 09:00,L1,SCR,1,9\n",
+        ["line 3: expected 4 fields, found 2", "line 4: expected 4 fields, found 5"],
+        id="malformed-fields",
+    ),
+    pytest.param(
+        HEADER + '2026-01-05 07:00,L1,SCR,1\n"2026-01-05 08:00"x,L1,SCR,1\n',
+        ["line 3: malformed CSV (',' expected after '\"'); check the quotes on this line"],
+        id="malformed-quote",
+    ),
+    pytest.param(
+        (HEADER + "2026-01-05 07:00,Lé,SCR,1\n").encode("cp1252"),
+        [
+            "line 2: not UTF-8 text (byte 0xE9 at column 19); save the file as UTF-8 (in a spreadsheet: CSV UTF-8)"
+        ],
+        id="not-utf8",
+    ),
 ]
 
 
@@ -62,7 +106,9 @@ def test_bad_event_files_are_rejected_whole(plant_store, tmp_path, content, rows
     path = put(tmp_path, "bad.csv", content)
     result = run(plant_store, "load", "events", str(path))
     assert result.exit_code == 2
-    expected = [f"Error: {path}: {len(rows)} bad row(s), nothing was loaded:"] + [f"  {path}: {r}" for r in rows]
+    expected = [f"Error: {path}: {len(rows)} bad row(s), nothing was loaded:"] + [
+        f"  {path}: {r}" for r in rows
+    ]
     assert result.stderr.splitlines() == expected
     assert result.stdout == ""
     assert plant_store.dump() == before
@@ -73,9 +119,11 @@ def test_bad_event_files_are_rejected_whole(plant_store, tmp_path, content, rows
     [
         pytest.param(b"", "the file is empty (expected a header line and data rows)", id="empty"),
         pytest.param(HEADER, "the file has a header (line 1) but no data rows", id="header-only"),
-        pytest.param("timestamp,line\n2026-01-05 07:00,L1\n",
-                     "line 1 (header): missing column(s) 'category'; expected columns timestamp,line,category[,quantity]",
-                     id="missing-column"),
+        pytest.param(
+            "timestamp,line\n2026-01-05 07:00,L1\n",
+            "line 1 (header): missing column(s) 'category'; expected columns timestamp,line,category[,quantity]",
+            id="missing-column",
+        ),
     ],
 )
 def test_bad_files_name_the_reason(plant_store, tmp_path, content, reason):
@@ -88,13 +136,20 @@ def test_bad_files_name_the_reason(plant_store, tmp_path, content, reason):
 
 def test_missing_file(plant_store, tmp_path):
     result = run(plant_store, "load", "counts", str(tmp_path / "nope.csv"))
-    assert (result.exit_code, result.stderr) == (2, f"Error: {tmp_path / 'nope.csv'}: no such file\n")
+    assert (result.exit_code, result.stderr) == (
+        2,
+        f"Error: {tmp_path / 'nope.csv'}: no such file\n",
+    )
 
 
 def test_bad_counts_file(plant_store, tmp_path):
     before = plant_store.dump()
-    path = put(tmp_path, "c.csv", "shift,line,category,count\n2026-01-05_A,L1,SCR,3\n2026-01-05_A,L1,SCR,4\n"
-                                  "2026-01-05_A, L1 ,DNT,1e3\n")
+    path = put(
+        tmp_path,
+        "c.csv",
+        "shift,line,category,count\n2026-01-05_A,L1,SCR,3\n2026-01-05_A,L1,SCR,4\n"
+        "2026-01-05_A, L1 ,DNT,1e3\n",
+    )
     result = run(plant_store, "load", "counts", str(path))
     assert result.exit_code == 2
     assert result.stderr.splitlines() == [
@@ -106,7 +161,9 @@ def test_bad_counts_file(plant_store, tmp_path):
 
 
 def test_accepted_quirks_are_said(plant_store, tmp_path):
-    path = put(tmp_path, "e.csv", "\ufefftimestamp,line,category\n2026-01-05T13:30:00+01:00, L1 ,SCR\n")
+    path = put(
+        tmp_path, "e.csv", "\ufefftimestamp,line,category\n2026-01-05T13:30:00+01:00, L1 ,SCR\n"
+    )
     result = run(plant_store, "load", "events", str(path))
     assert result.exit_code == 0, result.output
     assert result.stdout.splitlines() == [
@@ -137,8 +194,13 @@ def test_skip_bad_prints_the_rejects_path(plant_store, tmp_path):
     assert result.exit_code == 0
     assert f"1 bad row(s) written to {target}" in result.stdout.splitlines()
     rows = list(csv.DictReader(io.StringIO(target.read_text(encoding="utf-8"))))
-    assert rows == [{"line_no": "4", "reason": "unknown line 'L9' (not in [lines] of the config)",
-                     "raw": "2026-01-05 07:00,L9,SCR,1"}]
+    assert rows == [
+        {
+            "line_no": "4",
+            "reason": "unknown line 'L9' (not in [lines] of the config)",
+            "raw": "2026-01-05 07:00,L9,SCR,1",
+        }
+    ]
 
 
 def test_ambiguous_option(plant_store, tmp_path):
@@ -150,11 +212,27 @@ def test_ambiguous_option(plant_store, tmp_path):
 
 def test_counts_formats(plant_store, tmp_path):
     run(plant_store, "load", "events", str(put(tmp_path, "e.csv", GOOD)))
-    run(plant_store, "load", "counts", str(put(tmp_path, "c.csv", "shift,line,category,count\n2026-01-05_B,L3,FL,4\n")))
+    run(
+        plant_store,
+        "load",
+        "counts",
+        str(put(tmp_path, "c.csv", "shift,line,category,count\n2026-01-05_B,L3,FL,4\n")),
+    )
     data = json.loads(run(plant_store, "counts", "--format", "json").stdout)
-    assert data[0] == {"shift_date": "2026-01-05", "shift_name": "A", "shift_start": "2026-01-05T06:00:00-06:00",
-                       "shift_end": "2026-01-05T14:00:00-06:00", "line": "L1", "category": "SCR", "count": 2}
-    assert [(r["line"], r["category"], r["count"]) for r in data] == [("L1", "SCR", 2), ("L2", "DNT", 1), ("L3", "FL", 4)]
+    assert data[0] == {
+        "shift_date": "2026-01-05",
+        "shift_name": "A",
+        "shift_start": "2026-01-05T06:00:00-06:00",
+        "shift_end": "2026-01-05T14:00:00-06:00",
+        "line": "L1",
+        "category": "SCR",
+        "count": 2,
+    }
+    assert [(r["line"], r["category"], r["count"]) for r in data] == [
+        ("L1", "SCR", 2),
+        ("L2", "DNT", 1),
+        ("L3", "FL", 4),
+    ]
     table = run(plant_store, "counts").stdout.splitlines()
     assert table == [
         "shift         line  SCR  DNT  FL  total",
@@ -162,36 +240,70 @@ def test_counts_formats(plant_store, tmp_path):
         "2026-01-05_A  L2      0    1   0      1",
         "2026-01-05_B  L3      0    0   4      4",
     ]
-    text = run(plant_store, "counts", "--format", "csv", "--line", "L3", "--since", "2026-01-05", "--until", "2026-01-05").stdout
-    assert text == ("shift_date,shift_name,shift_start,shift_end,line,category,count\n"
-                    "2026-01-05,B,2026-01-05T14:00:00-06:00,2026-01-05T22:00:00-06:00,L3,FL,4\n")
+    text = run(
+        plant_store,
+        "counts",
+        "--format",
+        "csv",
+        "--line",
+        "L3",
+        "--since",
+        "2026-01-05",
+        "--until",
+        "2026-01-05",
+    ).stdout
+    assert text == (
+        "shift_date,shift_name,shift_start,shift_end,line,category,count\n"
+        "2026-01-05,B,2026-01-05T14:00:00-06:00,2026-01-05T22:00:00-06:00,L3,FL,4\n"
+    )
 
 
-def test_counts_csv_neutralises_formula_cells(plant_store, tmp_path, write_config, plant_config_text):
-    text = plant_config_text.replace('OTH = "other"', 'OTH = "other"\n"=X" = "formula-like code"').replace(
-        "OTH = 0.08", "OTH = 0.07, \"=X\" = 0.01")
+def test_counts_csv_neutralises_formula_cells(
+    plant_store, tmp_path, write_config, plant_config_text
+):
+    text = plant_config_text.replace(
+        'OTH = "other"', 'OTH = "other"\n"=X" = "formula-like code"'
+    ).replace("OTH = 0.08", 'OTH = 0.07, "=X" = 0.01')
     write_config(tmp_path, text)
     assert run(plant_store, "init").exit_code == 0
-    run(plant_store, "load", "counts", str(put(tmp_path, "c.csv", 'shift,line,category,count\n2026-01-05_A,L1,=X,1\n')))
+    run(
+        plant_store,
+        "load",
+        "counts",
+        str(put(tmp_path, "c.csv", "shift,line,category,count\n2026-01-05_A,L1,=X,1\n")),
+    )
     out = run(plant_store, "counts", "--format", "csv").stdout
     assert out.splitlines()[1].endswith(",L1,'=X,1")
 
 
 def test_counts_argument_errors(plant_store):
-    assert run(plant_store, "counts", "--line", "L9").stderr == "Error: --line: unknown line 'L9'; the config has L1, L2, L3, L4\n"
-    assert run(plant_store, "counts", "--since", "5.1.2026").stderr == "Error: --since: '5.1.2026' is not a date; write it as 2026-01-05\n"
+    assert (
+        run(plant_store, "counts", "--line", "L9").stderr
+        == "Error: --line: unknown line 'L9'; the config has L1, L2, L3, L4\n"
+    )
+    assert (
+        run(plant_store, "counts", "--since", "5.1.2026").stderr
+        == "Error: --since: '5.1.2026' is not a date; write it as 2026-01-05\n"
+    )
     result = run(plant_store, "counts", "--since", "2026-02-01", "--until", "2026-01-01")
-    assert (result.exit_code, result.stderr) == (2, "Error: --until: 2026-01-01 is before --since 2026-02-01\n")
+    assert (result.exit_code, result.stderr) == (
+        2,
+        "Error: --until: 2026-01-01 is before --since 2026-02-01\n",
+    )
 
 
 def test_pull_without_source_section(plant_store):
     result = run(plant_store, "pull")
     assert result.exit_code == 2
-    assert result.stderr.splitlines() == [f"Error: config {plant_store.config_path} has 1 problem(s):",
-                                          "  source: no [source] section: give url, query and kind to pull from"]
+    assert result.stderr.splitlines() == [
+        f"Error: config {plant_store.config_path} has 1 problem(s):",
+        "  source: no [source] section: give url, query and kind to pull from",
+    ]
 
 
-@pytest.mark.parametrize("args", [["load", "events"], ["load", "counts"], ["counts"], ["pull"], ["load"], ["loads"]])
+@pytest.mark.parametrize(
+    "args", [["load", "events"], ["load", "counts"], ["counts"], ["pull"], ["load"], ["loads"]]
+)
 def test_help(args):
     result = CliRunner().invoke(main, [*args, "--help"])
     assert result.exit_code == 0 and "Usage:" in result.output
@@ -204,7 +316,10 @@ def test_failure_late_in_the_load_leaves_nothing(plant_store, tmp_path):
     path = put(tmp_path, "e.csv", GOOD + "2026-01-05 07:00,L9,SCR,1\n")
     target = tmp_path / "no-such-dir" / "rejects.csv"
     result = run(plant_store, "load", "events", str(path), "--skip-bad", "--rejects", str(target))
-    assert (result.exit_code, result.stderr) == (2, f"Error: --rejects: cannot write {target}: No such file or directory\n")
+    assert (result.exit_code, result.stderr) == (
+        2,
+        f"Error: --rejects: cannot write {target}: No such file or directory\n",
+    )
     assert plant_store.dump() == before
 
 
@@ -215,7 +330,12 @@ def test_loads_shows_the_audit_trail(plant_store, tmp_path):
     data = json.loads(run(plant_store, "loads", "--format", "json").stdout)
     assert len(data) == 1
     row = data[0]
-    assert (row["kind"], row["rows_accepted"], row["rows_rejected"], row["corrections"]) == ("events", 2, 0, 0)
+    assert (row["kind"], row["rows_accepted"], row["rows_rejected"], row["corrections"]) == (
+        "events",
+        2,
+        0,
+        0,
+    )
     assert row["source"] == str(path.resolve()) and len(row["sha256"]) == 64
     table = run(plant_store, "loads").stdout
     assert "events  2 ok, 0 bad, 0 corr." in table and row["sha256"][:12] in table

@@ -61,7 +61,10 @@ def test_empty_file_is_rejected(data):
     assert str(err.value) == "f.csv: the file is empty (expected a header line and data rows)"
 
 
-@pytest.mark.parametrize("data", [b"timestamp,line,category\n", b"timestamp,line,category", b'"timestamp",line,category\n\n'])
+@pytest.mark.parametrize(
+    "data",
+    [b"timestamp,line,category\n", b"timestamp,line,category", b'"timestamp",line,category\n\n'],
+)
 def test_header_only_is_rejected(data):
     with pytest.raises(InputFileError) as err:
         read(data)
@@ -98,7 +101,10 @@ def test_wrong_field_counts_are_bad_rows_on_both_paths():
 def test_too_long_and_too_short_lines_that_balance_are_both_found(body):
     """Separator totals match the header here, so the whole-file shortcut must notice."""
     t = read(f"timestamp,line,category\n{body}".encode())
-    assert sorted(b.reason for b in t.bad_rows) == ["expected 3 fields, found 1", "expected 3 fields, found 5"]
+    assert sorted(b.reason for b in t.bad_rows) == [
+        "expected 3 fields, found 1",
+        "expected 3 fields, found 5",
+    ]
 
 
 def test_quoted_field_spanning_lines_keeps_later_line_numbers():
@@ -130,8 +136,11 @@ _cell = st.text(alphabet="abcXYZ0129 -:.+é", max_size=6)
 
 @settings(max_examples=200, deadline=None)
 @given(
-    rows=st.lists(st.one_of(st.lists(_cell, min_size=3, max_size=3), st.lists(_cell, min_size=1, max_size=5)),
-                  min_size=1, max_size=12),
+    rows=st.lists(
+        st.one_of(st.lists(_cell, min_size=3, max_size=3), st.lists(_cell, min_size=1, max_size=5)),
+        min_size=1,
+        max_size=12,
+    ),
     blank_every=st.integers(min_value=0, max_value=4),
 )
 def test_fast_path_agrees_with_csv_module(rows, blank_every):

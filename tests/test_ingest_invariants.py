@@ -44,13 +44,19 @@ _event = st.tuples(
 )
 
 
-@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=20, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(
     events=st.lists(_event, min_size=1, max_size=40, unique_by=lambda e: e[:3]),
-    files=st.lists(st.lists(st.integers(min_value=0, max_value=39), max_size=25), min_size=1, max_size=4),
+    files=st.lists(
+        st.lists(st.integers(min_value=0, max_value=39), max_size=25), min_size=1, max_size=4
+    ),
     repeat=st.integers(min_value=0, max_value=3),
 )
-def test_counts_equal_sums_over_distinct_events(tmp_path_factory, plant_config_text, events, files, repeat):
+def test_counts_equal_sums_over_distinct_events(
+    tmp_path_factory, plant_config_text, events, files, repeat
+):
     folder = tmp_path_factory.mktemp("inv")
     config, template = _make_template_cached(tmp_path_factory, plant_config_text)
     db = folder / "store.sqlite"
@@ -62,9 +68,14 @@ def test_counts_equal_sums_over_distinct_events(tmp_path_factory, plant_config_t
         for k, picks in enumerate(files):
             chosen = sorted({p % len(events) for p in picks}) or [0]
             path = folder / f"f{k}.csv"
-            path.write_text("timestamp,line,category,quantity\n" + "".join(
-                f"{(START + dt.timedelta(minutes=events[i][0])).isoformat()},{events[i][1]},{events[i][2]},{events[i][3]}\n"
-                for i in chosen), encoding="utf-8")
+            path.write_text(
+                "timestamp,line,category,quantity\n"
+                + "".join(
+                    f"{(START + dt.timedelta(minutes=events[i][0])).isoformat()},{events[i][1]},{events[i][2]},{events[i][3]}\n"
+                    for i in chosen
+                ),
+                encoding="utf-8",
+            )
             load_events_file(engine, config, path, now=NOW)
             loaded.update(chosen)
             paths.append(path)
@@ -84,7 +95,10 @@ def test_counts_equal_sums_over_distinct_events(tmp_path_factory, plant_config_t
         shift_date = local.date() if local.hour >= 6 else local.date() - dt.timedelta(days=1)
         name = "A" if 6 <= local.hour < 14 else "B" if 14 <= local.hour < 22 else "C"
         expected[(shift_date, name, line, cat)] += qty
-    got = {(r.shift_date, r.shift_name, r.line, r.category): int(r.count) for r in after.itertuples(index=False)}
+    got = {
+        (r.shift_date, r.shift_name, r.line, r.category): int(r.count)
+        for r in after.itertuples(index=False)
+    }
     assert got == dict(expected)
 
 

@@ -1,4 +1,5 @@
-"""Data commands: ``qcfit load events|counts FILE``, ``qcfit counts``, ``qcfit pull``, ``qcfit loads``.
+"""Data commands: ``qcfit load events|counts FILE``, ``qcfit counts``, ``qcfit pull``,
+``qcfit loads``.
 
 File formats and load rules: see :mod:`qcfit.ingest` (and the README's "Data formats").
 """
@@ -53,12 +54,16 @@ def _echo_report(report: LoadReport) -> None:
 
 
 _skip_bad = click.option(
-    "--skip-bad", is_flag=True,
+    "--skip-bad",
+    is_flag=True,
     help="Load the good rows and write the bad ones to a rejects file (default: any bad row "
     "rejects the whole file).",
 )
 _rejects = click.option(
-    "--rejects", "rejects", type=click.Path(dir_okay=False), default=None,
+    "--rejects",
+    "rejects",
+    type=click.Path(dir_okay=False),
+    default=None,
     help=f"Where --skip-bad writes the bad rows (default: FILE's name with {REJECTS_SUFFIX}).",
 )
 
@@ -73,12 +78,17 @@ def load_group() -> None:
 @_skip_bad
 @_rejects
 @click.option(
-    "--ambiguous", type=click.Choice(["raise", "earlier", "later"]), default="raise", show_default=True,
+    "--ambiguous",
+    type=click.Choice(["raise", "earlier", "later"]),
+    default="raise",
+    show_default=True,
     help="A naive local time in the repeated hour of an autumn clock change: a bad row "
     "(raise), or its first (earlier) or second (later) occurrence.",
 )
 @click.pass_context
-def load_events_command(ctx: click.Context, file: str, skip_bad: bool, rejects: str | None, ambiguous: str) -> None:
+def load_events_command(
+    ctx: click.Context, file: str, skip_bad: bool, rejects: str | None, ambiguous: str
+) -> None:
     """Load defect events: columns timestamp,line,category[,quantity].
 
     Timestamps are ISO 8601 with an offset (converted) or plant-local (naive). Counts of
@@ -87,8 +97,14 @@ def load_events_command(ctx: click.Context, file: str, skip_bad: bool, rejects: 
     """
     a = app(ctx)
     report = load_events_file(
-        a.engine(), a.config(), file, now=_now(), skip_bad=skip_bad, rejects=rejects,
-        ambiguous=ambiguous, **_who(),
+        a.engine(),
+        a.config(),
+        file,
+        now=_now(),
+        skip_bad=skip_bad,
+        rejects=rejects,
+        ambiguous=ambiguous,
+        **_who(),
     )
     _echo_report(report)
 
@@ -117,17 +133,29 @@ def _date(value: str | None, option: str) -> dt.date | None:
     try:
         return dt.date.fromisoformat(value.strip())
     except ValueError:
-        raise InvalidArgumentError(option, f"{value!r} is not a date; write it as 2026-01-05") from None
+        raise InvalidArgumentError(
+            option, f"{value!r} is not a date; write it as 2026-01-05"
+        ) from None
 
 
 @main.command("counts")
-@click.option("--since", default=None, help="First shift date (local start date, YYYY-MM-DD), inclusive.")
+@click.option(
+    "--since", default=None, help="First shift date (local start date, YYYY-MM-DD), inclusive."
+)
 @click.option("--until", default=None, help="Last shift date (YYYY-MM-DD), inclusive.")
 @click.option("--line", "lines", multiple=True, help="Only this line code (repeat for several).")
-@click.option("--format", "fmt", type=click.Choice(FORMATS), default="table", show_default=True,
-              help="table for reading, csv for a spreadsheet, json for programs.")
+@click.option(
+    "--format",
+    "fmt",
+    type=click.Choice(FORMATS),
+    default="table",
+    show_default=True,
+    help="table for reading, csv for a spreadsheet, json for programs.",
+)
 @click.pass_context
-def counts_command(ctx: click.Context, since: str | None, until: str | None, lines: Sequence[str], fmt: str) -> None:
+def counts_command(
+    ctx: click.Context, since: str | None, until: str | None, lines: Sequence[str], fmt: str
+) -> None:
     """Print stored defect counts per shift x line x category."""
     a = app(ctx)
     config = a.config()
@@ -140,7 +168,9 @@ def counts_command(ctx: click.Context, since: str | None, until: str | None, lin
             "--line", f"unknown line {unknown[0]!r}; the config has {', '.join(config.lines)}"
         )
     with read_tx(a.engine()) as conn:
-        frame = read_counts(conn, since=first, until=last, lines=list(lines) or None, tz=config.timezone)
+        frame = read_counts(
+            conn, since=first, until=last, lines=list(lines) or None, tz=config.timezone
+        )
     if fmt == "json":
         click.echo(json.dumps(counts_json(frame), indent=2))
     elif fmt == "csv":
@@ -182,15 +212,32 @@ def counts_table(frame: pd.DataFrame, categories: Sequence[str]) -> list[str]:
     if len(frame) == 0:
         return ["no counts stored for this selection"]
     cats = list(categories) + sorted(set(frame["category"]) - set(categories))
-    wide = frame.assign(shift=[f"{d.isoformat()}_{n}" for d, n in zip(frame["shift_date"], frame["shift_name"], strict=True)])
-    pivot = wide.pivot_table(index=["shift", "line"], columns="category", values="count", aggfunc="sum", fill_value=0, sort=False)
+    wide = frame.assign(
+        shift=[
+            f"{d.isoformat()}_{n}"
+            for d, n in zip(frame["shift_date"], frame["shift_name"], strict=True)
+        ]
+    )
+    pivot = wide.pivot_table(
+        index=["shift", "line"],
+        columns="category",
+        values="count",
+        aggfunc="sum",
+        fill_value=0,
+        sort=False,
+    )
     pivot = pivot.reindex(columns=[c for c in cats if c in pivot.columns])
     header = ["shift", "line", *pivot.columns, "total"]
-    body = [[s, li, *(str(int(v)) for v in vals), str(int(sum(vals)))] for (s, li), vals in zip(pivot.index, pivot.to_numpy().tolist(), strict=True)]
+    body = [
+        [s, li, *(str(int(v)) for v in vals), str(int(sum(vals)))]
+        for (s, li), vals in zip(pivot.index, pivot.to_numpy().tolist(), strict=True)
+    ]
     widths = [max(len(str(row[i])) for row in [header, *body]) for i in range(len(header))]
     out = []
     for row in [header, *body]:
-        cells = [str(v).ljust(widths[i]) if i < 2 else str(v).rjust(widths[i]) for i, v in enumerate(row)]
+        cells = [
+            str(v).ljust(widths[i]) if i < 2 else str(v).rjust(widths[i]) for i, v in enumerate(row)
+        ]
         out.append("  ".join(cells).rstrip())
     return out
 
@@ -206,7 +253,8 @@ def _since_instant(value: str | None, calendar: ShiftCalendar) -> dt.datetime | 
         stamp = dt.datetime.fromisoformat(text)
     except ValueError:
         raise InvalidArgumentError(
-            "--since", f"{value!r} is not a date or ISO 8601 time (e.g. 2026-01-05 or 2026-01-05T06:00-06:00)"
+            "--since",
+            f"{value!r} is not a date or ISO 8601 time (e.g. 2026-01-05 or 2026-01-05T06:00-06:00)",
         ) from None
     if stamp.tzinfo is None:
         return calendar.localize(stamp, ambiguous="earlier", nonexistent="forward")
@@ -214,14 +262,24 @@ def _since_instant(value: str | None, calendar: ShiftCalendar) -> dt.datetime | 
 
 
 @main.command("pull")
-@click.option("--since", default=None,
-              help="Pull rows from this date (plant-local midnight) or ISO 8601 time on "
-              "(default: the last 7 days).")
+@click.option(
+    "--since",
+    default=None,
+    help="Pull rows from this date (plant-local midnight) or ISO 8601 time on "
+    "(default: the last 7 days).",
+)
 @_skip_bad
-@click.option("--rejects", "rejects", type=click.Path(dir_okay=False), default=None,
-              help="Where --skip-bad writes the bad rows (default: qcfit-pull-TIME.rejects.csv here).")
+@click.option(
+    "--rejects",
+    "rejects",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Where --skip-bad writes the bad rows (default: qcfit-pull-TIME.rejects.csv here).",
+)
 @click.pass_context
-def pull_command(ctx: click.Context, since: str | None, skip_bad: bool, rejects: str | None) -> None:
+def pull_command(
+    ctx: click.Context, since: str | None, skip_bad: bool, rejects: str | None
+) -> None:
     """Load defect rows from the database named in the config's [source] section.
 
     The rows go through the same checks as a CSV file; rows already stored are not counted
@@ -233,22 +291,42 @@ def pull_command(ctx: click.Context, since: str | None, skip_bad: bool, rejects:
     start = _since_instant(since, ShiftCalendar.from_config(config))
     if skip_bad and rejects is None:
         rejects = f"qcfit-pull-{now:%Y%m%dT%H%M%SZ}{REJECTS_SUFFIX}"
-    report = pull(a.engine(), config, now=now, since=start, skip_bad=skip_bad, rejects=rejects, **_who())
+    report = pull(
+        a.engine(), config, now=now, since=start, skip_bad=skip_bad, rejects=rejects, **_who()
+    )
     _echo_report(report)
 
 
 @main.command("loads")
-@click.option("--limit", type=click.IntRange(min=1), default=20, show_default=True, help="How many loads, newest first.")
-@click.option("--format", "fmt", type=click.Choice(("table", "json")), default="table", show_default=True)
+@click.option(
+    "--limit",
+    type=click.IntRange(min=1),
+    default=20,
+    show_default=True,
+    help="How many loads, newest first.",
+)
+@click.option(
+    "--format", "fmt", type=click.Choice(("table", "json")), default="table", show_default=True
+)
 @click.pass_context
 def loads_command(ctx: click.Context, limit: int, fmt: str) -> None:
     """Show the audit trail of loads: source, content hash, rows, corrections, who and when."""
     with read_tx(app(ctx).engine()) as conn:
         rows = list_loads(conn, limit=limit)
     data = [
-        {"id": r.id, "kind": r.kind, "loaded_utc": r.loaded.isoformat(), "os_user": r.os_user, "host": r.host,
-         "rows_accepted": r.rows_accepted, "rows_rejected": r.rows_rejected, "corrections": r.corrections,
-         "sha256": r.content_hash, "source": r.source, "note": r.note}
+        {
+            "id": r.id,
+            "kind": r.kind,
+            "loaded_utc": r.loaded.isoformat(),
+            "os_user": r.os_user,
+            "host": r.host,
+            "rows_accepted": r.rows_accepted,
+            "rows_rejected": r.rows_rejected,
+            "corrections": r.corrections,
+            "sha256": r.content_hash,
+            "source": r.source,
+            "note": r.note,
+        }
         for r in rows
     ]
     if fmt == "json":

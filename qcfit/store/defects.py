@@ -114,8 +114,17 @@ class Correction:
 
 def _load_row(r) -> LoadRow:
     return LoadRow(
-        int(r.id), r.kind, r.source, r.content_hash, from_utc_naive(r.loaded_utc), r.os_user,
-        r.host, int(r.rows_accepted), int(r.rows_rejected), int(r.corrections), r.note,
+        int(r.id),
+        r.kind,
+        r.source,
+        r.content_hash,
+        from_utc_naive(r.loaded_utc),
+        r.os_user,
+        r.host,
+        int(r.rows_accepted),
+        int(r.rows_rejected),
+        int(r.corrections),
+        r.note,
     )
 
 
@@ -147,16 +156,24 @@ def insert_load(
     """Insert an audit row; returns its id (``loaded`` aware)."""
     result = conn.execute(
         insert(load).values(
-            kind=kind, source=source, content_hash=content_hash, loaded_utc=to_utc_naive(loaded),
-            os_user=os_user, host=host, rows_accepted=rows_accepted, rows_rejected=rows_rejected,
-            corrections=corrections, note=note,
+            kind=kind,
+            source=source,
+            content_hash=content_hash,
+            loaded_utc=to_utc_naive(loaded),
+            os_user=os_user,
+            host=host,
+            rows_accepted=rows_accepted,
+            rows_rejected=rows_rejected,
+            corrections=corrections,
+            note=note,
         )
     )
     return int(result.inserted_primary_key[0])
 
 
 def update_load(conn: Connection, load_id: int, **values: Any) -> None:
-    """Set columns of an audit row (``rows_accepted``, ``rows_rejected``, ``corrections``, ``note``)."""
+    """Set columns of an audit row (``rows_accepted``, ``rows_rejected``, ``corrections``,
+    ``note``)."""
     conn.execute(update(load).where(load.c.id == load_id).values(**values))
 
 
@@ -173,7 +190,9 @@ def _ts_text(values: np.ndarray) -> list[str]:
     return pd.DatetimeIndex(values).strftime(SQLITE_DATETIME_FORMAT).tolist()
 
 
-def insert_events(conn: Connection, events: pd.DataFrame, load_id: int, *, batch: int = EVENT_BATCH) -> int:
+def insert_events(
+    conn: Connection, events: pd.DataFrame, load_id: int, *, batch: int = EVENT_BATCH
+) -> int:
     """Append events (columns ``ts_utc`` datetime64 naive UTC, ``shift_id``, ``line``,
     ``category``, ``quantity``); returns how many rows were written."""
     n = len(events)
@@ -191,7 +210,15 @@ def insert_events(conn: Connection, events: pd.DataFrame, load_id: int, *, batch
         )
         for lo in range(0, n, batch):
             hi = min(n, lo + batch)
-            rows = zip(_ts_text(ts[lo:hi]), shift_ids[lo:hi], lines[lo:hi], cats[lo:hi], qty[lo:hi], [load_id] * (hi - lo), strict=True)
+            rows = zip(
+                _ts_text(ts[lo:hi]),
+                shift_ids[lo:hi],
+                lines[lo:hi],
+                cats[lo:hi],
+                qty[lo:hi],
+                [load_id] * (hi - lo),
+                strict=True,
+            )
             conn.exec_driver_sql(sql, list(rows))
         return n
     stmt = insert(defect_event)
@@ -201,8 +228,17 @@ def insert_events(conn: Connection, events: pd.DataFrame, load_id: int, *, batch
         conn.execute(
             stmt,
             [
-                {"ts_utc": t, "shift_id": s, "line": li, "category": c, "quantity": q, "load_id": load_id}
-                for t, s, li, c, q in zip(stamps, shift_ids[lo:hi], lines[lo:hi], cats[lo:hi], qty[lo:hi], strict=True)
+                {
+                    "ts_utc": t,
+                    "shift_id": s,
+                    "line": li,
+                    "category": c,
+                    "quantity": q,
+                    "load_id": load_id,
+                }
+                for t, s, li, c, q in zip(
+                    stamps, shift_ids[lo:hi], lines[lo:hi], cats[lo:hi], qty[lo:hi], strict=True
+                )
             ],
         )
     return n
@@ -223,7 +259,11 @@ def read_events(conn: Connection, shift_row_ids: Iterable[int]) -> pd.DataFrame:
     for part in _chunks(sorted({int(i) for i in shift_row_ids})):
         rows = conn.execute(select(*cols).where(defect_event.c.shift_id.in_(part))).all()
         if rows:
-            parts.append(pd.DataFrame(rows, columns=["id", "ts_utc", "shift_id", "line", "category", "quantity"]))
+            parts.append(
+                pd.DataFrame(
+                    rows, columns=["id", "ts_utc", "shift_id", "line", "category", "quantity"]
+                )
+            )
     if not parts:
         return pd.DataFrame(
             {
@@ -237,7 +277,9 @@ def read_events(conn: Connection, shift_row_ids: Iterable[int]) -> pd.DataFrame:
         )
     frame = pd.concat(parts, ignore_index=True)
     ts = pd.to_datetime(frame["ts_utc"].astype("str"), format="ISO8601")
-    frame["ts_utc"] = ts.dt.tz_localize(None).dt.as_unit("us") if ts.dt.tz is not None else ts.dt.as_unit("us")
+    frame["ts_utc"] = (
+        ts.dt.tz_localize(None).dt.as_unit("us") if ts.dt.tz is not None else ts.dt.as_unit("us")
+    )
     for c in ("id", "shift_id", "quantity"):
         frame[c] = frame[c].astype(np.int64)
     for c in ("line", "category"):
@@ -246,7 +288,8 @@ def read_events(conn: Connection, shift_row_ids: Iterable[int]) -> pd.DataFrame:
 
 
 def update_event_quantities(conn: Connection, changes: pd.DataFrame, load_id: int) -> int:
-    """Set ``quantity`` (and ``load_id``) of existing events; ``changes`` has ``id``, ``quantity``."""
+    """Set ``quantity`` (and ``load_id``) of existing events; ``changes`` has ``id`` and
+    ``quantity``."""
     if len(changes) == 0:
         return 0
     stmt = (
@@ -256,7 +299,10 @@ def update_event_quantities(conn: Connection, changes: pd.DataFrame, load_id: in
     )
     conn.execute(
         stmt,
-        [{"b_id": int(i), "b_q": int(q)} for i, q in zip(changes["id"], changes["quantity"], strict=True)],
+        [
+            {"b_id": int(i), "b_q": int(q)}
+            for i, q in zip(changes["id"], changes["quantity"], strict=True)
+        ],
     )
     return len(changes)
 
@@ -265,7 +311,11 @@ def event_lines(conn: Connection, shift_row_ids: Iterable[int]) -> set[tuple[int
     """(shift row id, line) pairs that have at least one raw event."""
     out: set[tuple[int, str]] = set()
     for part in _chunks(sorted({int(i) for i in shift_row_ids})):
-        q = select(defect_event.c.shift_id, defect_event.c.line).where(defect_event.c.shift_id.in_(part)).distinct()
+        q = (
+            select(defect_event.c.shift_id, defect_event.c.line)
+            .where(defect_event.c.shift_id.in_(part))
+            .distinct()
+        )
         out.update((int(s), str(li)) for s, li in conn.execute(q))
     return out
 
@@ -274,8 +324,15 @@ def event_lines(conn: Connection, shift_row_ids: Iterable[int]) -> set[tuple[int
 
 
 def count_cells(conn: Connection, shift_row_ids: Iterable[int]) -> pd.DataFrame:
-    """Stored count cells of these shifts: ``shift_id``, ``line``, ``category``, ``count``, ``load_id``."""
-    cols = [defect_count.c.shift_id, defect_count.c.line, defect_count.c.category, defect_count.c["count"], defect_count.c.load_id]
+    """Stored count cells of these shifts: ``shift_id``, ``line``, ``category``, ``count``,
+    ``load_id``."""
+    cols = [
+        defect_count.c.shift_id,
+        defect_count.c.line,
+        defect_count.c.category,
+        defect_count.c["count"],
+        defect_count.c.load_id,
+    ]
     rows: list = []
     for part in _chunks(sorted({int(i) for i in shift_row_ids})):
         rows.extend(conn.execute(select(*cols).where(defect_count.c.shift_id.in_(part))).all())
@@ -293,16 +350,29 @@ def unit_cells(conn: Connection, shift_row_ids: Iterable[int]) -> pd.DataFrame:
     return frame.astype({"shift_id": np.int64, "line": "str", "units": np.int64})
 
 
-def _upsert(conn: Connection, table, keys: Sequence[str], value: str, rows: pd.DataFrame, old: pd.DataFrame, load_id: int) -> list[tuple[tuple, int, int]]:
+def _upsert(
+    conn: Connection,
+    table,
+    keys: Sequence[str],
+    value: str,
+    rows: pd.DataFrame,
+    old: pd.DataFrame,
+    load_id: int,
+) -> list[tuple[tuple, int, int]]:
     """Insert new cells, update changed ones; returns (key, old, new) of every changed cell."""
-    merged = rows[list(keys) + [value]].merge(old[list(keys) + [value]], on=list(keys), how="left", suffixes=("", "_old"), indicator=True)
+    merged = rows[list(keys) + [value]].merge(
+        old[list(keys) + [value]], on=list(keys), how="left", suffixes=("", "_old"), indicator=True
+    )
     new = merged[merged["_merge"] == "left_only"]
     both = merged[merged["_merge"] == "both"]
     changed = both[both[value] != both[f"{value}_old"]]
     if len(new):
         conn.execute(
             insert(table),
-            [dict(zip(keys, _plain(k), strict=True)) | {value: int(v), "load_id": load_id} for *k, v in new[list(keys) + [value]].itertuples(index=False)],
+            [
+                dict(zip(keys, _plain(k), strict=True)) | {value: int(v), "load_id": load_id}
+                for *k, v in new[list(keys) + [value]].itertuples(index=False)
+            ],
         )
     if len(changed):
         cond = and_(*(table.c[k] == bindparam(f"k_{k}") for k in keys))
@@ -324,22 +394,29 @@ def _plain(values: Iterable[Any]) -> list[Any]:
     return [v.item() if isinstance(v, np.generic) else v for v in values]
 
 
-def write_counts(conn: Connection, rows: pd.DataFrame, load_id: int, *, record: bool = True) -> list[Correction]:
+def write_counts(
+    conn: Connection, rows: pd.DataFrame, load_id: int, *, record: bool = True
+) -> list[Correction]:
     """Upsert count cells (``rows``: ``shift_id`` (shift row id), ``line``, ``category``,
     ``count``). A cell that already held a different value is changed and returned as a
     :class:`Correction`; with ``record`` it is also written to ``count_correction``."""
     if len(rows) == 0:
         return []
     old = count_cells(conn, rows["shift_id"].unique())
-    changed = _upsert(conn, defect_count, ("shift_id", "line", "category"), "count", rows, old, load_id)
+    changed = _upsert(
+        conn, defect_count, ("shift_id", "line", "category"), "count", rows, old, load_id
+    )
     corrections = [Correction(int(k[0]), str(k[1]), str(k[2]), o, n) for k, o, n in changed]
     if record:
         record_corrections(conn, load_id, corrections)
     return corrections
 
 
-def write_units(conn: Connection, rows: pd.DataFrame, load_id: int, *, record: bool = True) -> list[Correction]:
-    """Upsert units inspected (``rows``: ``shift_id``, ``line``, ``units``); like :func:`write_counts`."""
+def write_units(
+    conn: Connection, rows: pd.DataFrame, load_id: int, *, record: bool = True
+) -> list[Correction]:
+    """Upsert units inspected (``rows``: ``shift_id``, ``line``, ``units``); like
+    :func:`write_counts`."""
     if len(rows) == 0:
         return []
     old = unit_cells(conn, rows["shift_id"].unique())
@@ -357,8 +434,14 @@ def record_corrections(conn: Connection, load_id: int, corrections: Sequence[Cor
     conn.execute(
         insert(count_correction),
         [
-            {"load_id": load_id, "shift_id": c.shift_row_id, "line": c.line, "category": c.category,
-             "old_value": c.old, "new_value": c.new}
+            {
+                "load_id": load_id,
+                "shift_id": c.shift_row_id,
+                "line": c.line,
+                "category": c.category,
+                "old_value": c.old,
+                "new_value": c.new,
+            }
             for c in corrections
         ],
     )
@@ -367,7 +450,15 @@ def record_corrections(conn: Connection, load_id: int, corrections: Sequence[Cor
 
 # --- reading counts back ------------------------------------------------------------------
 
-COUNT_FRAME_COLUMNS = ("shift_date", "shift_name", "shift_start", "shift_end", "line", "category", "count")
+COUNT_FRAME_COLUMNS = (
+    "shift_date",
+    "shift_name",
+    "shift_start",
+    "shift_end",
+    "line",
+    "category",
+    "count",
+)
 
 
 def read_counts(
@@ -386,11 +477,18 @@ def read_counts(
     """
     q = (
         select(
-            shift.c.shift_date, shift.c.shift_name, shift.c.start_utc, shift.c.end_utc,
-            defect_count.c.line, defect_count.c.category, defect_count.c["count"],
+            shift.c.shift_date,
+            shift.c.shift_name,
+            shift.c.start_utc,
+            shift.c.end_utc,
+            defect_count.c.line,
+            defect_count.c.category,
+            defect_count.c["count"],
         )
         .join(shift, shift.c.id == defect_count.c.shift_id)
-        .order_by(shift.c.start_utc, shift.c.shift_name, defect_count.c.line, defect_count.c.category)
+        .order_by(
+            shift.c.start_utc, shift.c.shift_name, defect_count.c.line, defect_count.c.category
+        )
     )
     if since is not None:
         q = q.where(shift.c.shift_date >= since)
@@ -399,15 +497,24 @@ def read_counts(
     if lines:
         q = q.where(defect_count.c.line.in_(list(lines)))
     out = [
-        (r.shift_date, r.shift_name, from_utc_naive(r.start_utc).astimezone(tz),
-         from_utc_naive(r.end_utc).astimezone(tz), r.line, r.category, int(r.count))
+        (
+            r.shift_date,
+            r.shift_name,
+            from_utc_naive(r.start_utc).astimezone(tz),
+            from_utc_naive(r.end_utc).astimezone(tz),
+            r.line,
+            r.category,
+            int(r.count),
+        )
         for r in conn.execute(q)
     ]
     frame = pd.DataFrame(out, columns=list(COUNT_FRAME_COLUMNS))
     return frame.astype({"count": np.int64})
 
 
-def shift_table(conn: Connection, shift_row_id: int, lines: Sequence[str], categories: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+def shift_table(
+    conn: Connection, shift_row_id: int, lines: Sequence[str], categories: Sequence[str]
+) -> tuple[np.ndarray, np.ndarray]:
     """One shift's counts as arrays: (int64 (L, K) counts, float64 (L,) units inspected).
 
     Rows follow ``lines``, columns ``categories``; a cell with no stored row is 0, a line
@@ -424,7 +531,9 @@ def shift_table(conn: Connection, shift_row_id: int, lines: Sequence[str], categ
     for line_code, cat, value in conn.execute(q):
         if line_code in li and cat in ki:
             counts[li[line_code], ki[cat]] = int(value)
-    q = select(units_inspected.c.line, units_inspected.c.units).where(units_inspected.c.shift_id == shift_row_id)
+    q = select(units_inspected.c.line, units_inspected.c.units).where(
+        units_inspected.c.shift_id == shift_row_id
+    )
     for line_code, value in conn.execute(q):
         if line_code in li:
             units[li[line_code]] = float(value)
@@ -461,7 +570,9 @@ def fetch_source_rows(
     try:
         engine = create_engine(parsed, **engine_args)
     except (sa_exc.ArgumentError, ImportError) as exc:
-        raise InputFileError(f"[source] url {shown}", reason=f"cannot use this URL ({exc})") from exc
+        raise InputFileError(
+            f"[source] url {shown}", reason=f"cannot use this URL ({exc})"
+        ) from exc
     stmt = text(query)
     names = set(stmt.compile().params)
     bound = {k: v for k, v in params.items() if k in names}
@@ -474,10 +585,14 @@ def fetch_source_rows(
         detail = str(exc.orig or exc).splitlines()[0]
         if "unable to open" in detail or "connect" in detail.lower():
             raise StoreError(f"cannot read [source] {shown}: {detail}") from exc
-        raise InputFileError(f"[source] query on {shown}", reason=f"the query failed: {detail}") from exc
+        raise InputFileError(
+            f"[source] query on {shown}", reason=f"the query failed: {detail}"
+        ) from exc
     except sa_exc.SQLAlchemyError as exc:
         detail = str(getattr(exc, "orig", None) or exc).splitlines()[0]
-        raise InputFileError(f"[source] query on {shown}", reason=f"the query failed: {detail}") from exc
+        raise InputFileError(
+            f"[source] query on {shown}", reason=f"the query failed: {detail}"
+        ) from exc
     finally:
         engine.dispose()
     return columns, rows, set(bound)
@@ -501,4 +616,3 @@ def _sqlite_readonly(path: Path):
         return sqlite3.connect(f"{target.as_uri()}?mode=ro", uri=True)
 
     return connect
-

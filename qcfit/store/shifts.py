@@ -105,8 +105,13 @@ def ensure_shifts(conn: Connection, instances: Sequence[ShiftInstance]) -> dict[
         row = found[sid]
         if row.start != inst.start or row.end != inst.end:
             log.warning(
-                "shift %s is stored as %s..%s but the calendar now says %s..%s; keeping the stored times",
-                sid, row.start, row.end, inst.start, inst.end,
+                "shift %s is stored as %s..%s but the calendar now says %s..%s; "
+                "keeping the stored times",
+                sid,
+                row.start,
+                row.end,
+                inst.start,
+                inst.end,
             )
     return {sid: found[sid].row_id for sid in wanted}
 
