@@ -557,3 +557,28 @@ def test_parse_config_report_folder_none_means_no_folder(plant_config_text):
 
     config = parse_config(tomllib.loads(plant_config_text), text=plant_config_text)
     assert report_folder(config) is None
+
+
+def test_a_failed_evaluation_gets_a_page_that_says_so(tmp_path):
+    """A shift whose only evaluation failed (as the service records it) still has a report."""
+    from qcfit.store.engine import to_utc_naive
+    from qcfit.store.evaluations import insert_evaluation
+    from qcfit.store.shifts import ensure_shifts
+
+    config, engine, ids = build_plant(tmp_path, shifts=6, jump_from=99)
+    cal = ShiftCalendar.from_config(config)
+    failed = cal.from_id(ids[-1]).end  # the next shift starts where the last one ended
+    nxt = cal.shift_at(failed)
+    with write_tx(engine) as conn:
+        row = ensure_shifts(conn, [nxt])[nxt.id]
+        insert_evaluation(conn, {
+            "shift_id": row, "status": "failed", "started_utc": to_utc_naive(nxt.end),
+            "finished_utc": to_utc_naive(nxt.end), "error": "StoreError: disk <full>",
+            "config_hash": config.hash, "code_version": "test", "seed": 1, "is_current": True,
+            "superseded_utc": None})
+    d = gather(engine, config, nxt.id, now=NOW)
+    assert d.evaluation.status == "failed" and d.findings == ()
+    assert [h.id for h in d.history][-2:] == [ids[-1], nxt.id]
+    html = render_html(d)
+    assert "evaluation failed" in html and "disk &lt;full&gt;" in html
+    engine.dispose()

@@ -13,10 +13,12 @@ paired with a marker shape or a word, so a grey-scale print still reads.
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import io
 import math
 import re
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 
 import matplotlib
 
@@ -97,6 +99,23 @@ def safe(text: object, limit: int = 28) -> str:
     if len(s) > limit:
         s = s[: limit - 1].rstrip() + "\u2026"
     return s.replace("$", r"\$")
+
+
+@contextlib.contextmanager
+def paused_gc() -> Iterator[None]:
+    """Pause the cyclic garbage collector while charts are drawn, then restore it.
+
+    Matplotlib builds many short-lived reference cycles; with a large heap (numpy, scipy,
+    SQLAlchemy loaded) the collections they trigger cost about a third of the drawing time.
+    The cycles are collected as usual once the collector runs again.
+    """
+    was = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was:
+            gc.enable()
 
 
 def wrap(text: object, width: int, lines: int) -> str:

@@ -262,7 +262,7 @@ def _alarm_table(data: ReportData) -> str:
         detail = f'<div class="moves">{e(moves)}</div>' if moves else ""
         rows.append(
             f'<tr class="r-{e(a.role)}"><td>{_badge(a.severity, a.severity.upper())}</td>'
-            f"<td><b>{e(a.line or 'all lines')}</b></td>"
+            f"<td><b>{e(a.line or 'between lines')}</b></td>"
             f"<td>{e(KIND_WORDS.get(a.kind, a.kind))}</td>"
             f'<td class="what">{e(a.summary)}{detail}</td>'
             f"<td>{e(ROLE_WORDS.get(a.role, a.role))}<br><span class=\"muted\">since {e(since)}, "
@@ -283,6 +283,15 @@ def _verdict_cell(f: FindingView | None, figure: str) -> str:
     return f"<td>{_badge(status)} <span class=\"fig\">{e(figure)}</span></td>"
 
 
+def _figure(f: FindingView | None, words) -> str:
+    """The test's figures; with too little data only the count (its w or ratio would be noise)."""
+    if f is None:
+        return ""
+    if f.verdict == TOO_LITTLE:
+        return f"{f.n:,} defects"
+    return words(f) if math.isfinite(f.effect_size) else ""
+
+
 def _glance(data: ReportData) -> str:
     rows = []
     for i, (code, name) in enumerate(data.lines):
@@ -294,10 +303,9 @@ def _glance(data: ReportData) -> str:
         base = ""
         if rate is not None and math.isfinite(rate.baseline_rate):
             base = f'<span class="muted"> / {100 * rate.baseline_rate:.2f}%</span>'
-        mix_fig = "" if mix is None or not math.isfinite(mix.effect_size) else (
-            f"w {mix.effect_size:.2f}, p {fmt_p(mix.adjusted_pvalue)}")
-        rate_fig = "" if rate is None or not math.isfinite(rate.effect_size) else (
-            f"{rate.effect_size:.2f}\u00d7 baseline, p {fmt_p(rate.adjusted_pvalue)}")
+        mix_fig = _figure(mix, lambda f: f"w {f.effect_size:.2f}, p {fmt_p(f.adjusted_pvalue)}")
+        rate_fig = _figure(rate, lambda f: f"{f.effect_size:.2f}\u00d7 baseline, "
+                                           f"p {fmt_p(f.adjusted_pvalue)}")
         rows.append(
             f'<tr><td class="ln"><b>{e(code)}</b> <span class="muted">{e(name)}</span></td>'
             f'<td class="num">{n:,}</td>'
@@ -483,7 +491,8 @@ def render_html(data: ReportData) -> str:
                      "shifts still open. \u201cState now\u201d is the state when this page was made.")]
     if data.evaluation.status == "ok":
         body.append(_section("Lines at a glance", _glance(data)))
-        body += _charts(data)
+        with plots.paused_gc():
+            body += _charts(data)
     body.append(_footer(data))
     title = f"Shift {data.shift.id} \u00b7 {data.plant_name or 'plant'} \u00b7 qcfit"
     csp = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
