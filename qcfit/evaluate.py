@@ -484,6 +484,11 @@ def fit_lines(
 FAR_REASON = ("asymptotic chi-square: Cochran's rule holds and the multiplicity-adjusted "
               "p-value is far from every decision level")
 NEAR_FACTOR = 3.0  # refine when the adjusted p is within this factor of a level (as stats does)
+# qcfit.stats refines a Monte Carlo p-value near a raw level L up to a 3% relative standard
+# error, about (1 - L)/(L 0.0009) draws: 110,000 at L = 0.01, its cap of 500,000 from L = 2e-3
+# down. Raw levels below this floor are not refined; there the asymptotic p-value stands
+# (Cochran's rule holds for those tables; common practice, no source).
+REFINE_FLOOR = 1e-3
 
 
 def _adjusted(p: np.ndarray, method: str) -> np.ndarray:
@@ -511,9 +516,11 @@ def _gof_two_pass(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: 
         near = [a for a in lv if a / NEAR_FACTOR <= adj[i] <= a * NEAR_FACTOR]
         sparse = not cochran_ok(np.asarray(f.expected)[job.proportions > 0])
         if near or sparse:
-            refine.append(i)
             scale = own[i] / adj[i] if adj[i] > 0 else 1.0
-            levels.update(min(0.5, a * scale) for a in lv)
+            raw = [a * scale for a in lv]
+            if sparse or any(x >= REFINE_FLOOR for x in raw):
+                refine.append(i)
+                levels.update(min(0.5, max(REFINE_FLOOR, x)) for x in raw)
     if not refine:
         return first
     better = _gof_batch(table, [jobs[i] for i in refine], seed, draws, mode="auto",
