@@ -582,3 +582,22 @@ def test_a_failed_evaluation_gets_a_page_that_says_so(tmp_path):
     html = render_html(d)
     assert "evaluation failed" in html and "disk &lt;full&gt;" in html
     engine.dispose()
+
+
+def test_a_shift_without_counts_says_nothing_could_be_tested(tmp_path):
+    config, engine, ids = build_plant(tmp_path, shifts=6, jump_from=99)
+    cal = ShiftCalendar.from_config(config)
+    empty = cal.shift_at(cal.from_id(ids[-1]).end)
+    (s,) = service.evaluate_shifts(engine, config, [empty], now=empty.end + dt.timedelta(hours=1))
+    assert s.ok
+    html = render_html(gather(engine, config, empty.id, now=NOW))
+    assert "No counts were loaded for this shift" in html
+    engine.dispose()
+
+
+def test_a_service_fault_is_placed_on_the_service_not_on_a_line(jump_data):
+    fault = dataclasses.replace(jump_data.alarms[0], id=99, kind="service-fault", line=None,
+                                role="new", summary="evaluation failed: StoreError: locked")
+    html = render_html(dataclasses.replace(jump_data, alarms=(fault, *jump_data.alarms)))
+    assert "<td><b>qcfit service</b></td>" in html
+    assert "Look first at</span> <b>qcfit service</b>, service fault" in html

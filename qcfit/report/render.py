@@ -102,6 +102,13 @@ def _line_label(data: ReportData, code: str | None) -> str:
     return f"{code} ({name})" if name and name != code else str(code)
 
 
+def _where(data: ReportData, a: AlarmItem) -> str:
+    """Where an alarm is: its line, the lines as a whole, or the qcfit service itself."""
+    if a.line is not None:
+        return _line_label(data, a.line)
+    return "qcfit service" if a.kind == "service-fault" else "between lines"
+
+
 def _badge(status: str | None, text: str | None = None) -> str:
     status = status or "none"
     word = text or VERDICT_WORDS.get(status, status.replace("-", " "))
@@ -189,20 +196,19 @@ def _headline(data: ReportData) -> str:
     active = _active(data)
     if active:
         lines = sorted({a.line for a in active if a.line}, key=[c for c, _ in data.lines].index)
-        plant_wide = any(a.line is None for a in active)
-        where = ", ".join(lines)
-        if plant_wide:
-            where = (where + " and " if where else "") + "between lines"
+        where = ", ".join([*lines, *sorted({_where(data, a) for a in active if a.line is None})])
         verdict = f"{_count_words(active)} this shift: {where}."
     else:
         verdict = "No alarm or watch this shift."
+        if not any(any(r) for r in data.counts) and not any(math.isfinite(u) for u in data.units):
+            verdict = "No counts were loaded for this shift: nothing could be tested."
     out = [f'<section class="headline s-{status}">',
            f'<p class="verdict">{_badge(status, "ALARM" if status == ALARM else "WATCH" if status == WATCH else "no alarm")} '
            f"{e(verdict)}</p>"]
     first = next((a for a in data.alarms if a.role != "cleared"), None)
     if first is not None:
         out.append(f'<p class="first"><span class="lead">Look first at</span> '
-                   f"<b>{e(_line_label(data, first.line))}</b>, {e(KIND_WORDS.get(first.kind, first.kind))}: "
+                   f"<b>{e(_where(data, first))}</b>, {e(KIND_WORDS.get(first.kind, first.kind))}: "
                    f"{e(first.summary)}.</p>")
     earlier = [a for a in data.alarms if a.role == "earlier"]
     cleared = [a for a in data.alarms if a.role == "cleared"]
@@ -262,7 +268,7 @@ def _alarm_table(data: ReportData) -> str:
         detail = f'<div class="moves">{e(moves)}</div>' if moves else ""
         rows.append(
             f'<tr class="r-{e(a.role)}"><td>{_badge(a.severity, a.severity.upper())}</td>'
-            f"<td><b>{e(a.line or 'between lines')}</b></td>"
+            f"<td><b>{e(a.line or _where(data, a))}</b></td>"
             f"<td>{e(KIND_WORDS.get(a.kind, a.kind))}</td>"
             f'<td class="what">{e(a.summary)}{detail}</td>'
             f"<td>{e(ROLE_WORDS.get(a.role, a.role))}<br><span class=\"muted\">since {e(since)}, "
@@ -495,7 +501,7 @@ def render_html(data: ReportData) -> str:
             body += _charts(data)
     body.append(_footer(data))
     title = f"Shift {data.shift.id} \u00b7 {data.plant_name or 'plant'} \u00b7 qcfit"
-    csp = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; "
+    csp = ("default-src 'none'; style-src 'unsafe-inline'; "
            "form-action 'none'; base-uri 'none'")
     return (
         "<!DOCTYPE html>\n"
