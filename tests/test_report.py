@@ -601,3 +601,12 @@ def test_a_service_fault_is_placed_on_the_service_not_on_a_line(jump_data):
     html = render_html(dataclasses.replace(jump_data, alarms=(fault, *jump_data.alarms)))
     assert "<td><b>qcfit service</b></td>" in html
     assert "Look first at</span> <b>qcfit service</b>, service fault" in html
+
+
+def test_write_after_a_catch_up_writes_only_the_newest_keep(tmp_path):
+    config, engine, ids = build_plant(tmp_path, plant_text(keep=2), shifts=6, jump_from=99)
+    written = write_after_evaluation(engine, config, list(reversed(ids)), now=NOW)
+    assert [p.name for p in written] == [report_name(ids[-2]), report_name(ids[-1])]
+    assert sorted(p.name for p in (tmp_path / "reports").iterdir()) == sorted(
+        report_name(s) for s in ids[-2:])
+    engine.dispose()

@@ -89,6 +89,11 @@ def _order(config: Any) -> dict[str, int]:
     return {s.name: i for i, s in enumerate(specs)}
 
 
+def _shift_key(shift_id: str, order: dict[str, int]) -> tuple:
+    date, _, name = shift_id.partition("_")
+    return (date, order.get(name, len(order)), name)
+
+
 def prune(folder: str | Path, keep: int, config: Any) -> list[Path]:
     """Delete the oldest ``shift-*.html`` reports in ``folder`` beyond the newest ``keep``
     (ordered by shift date, then the shift's start time in the config); other files are left
@@ -136,12 +141,16 @@ def write_shift_report(engine: Any, config: Any, shift_id: str | None = None, *,
 def write_after_evaluation(engine: Any, config: Any, shift_ids: Sequence[str], *,
                            now: dt.datetime) -> list[Path]:
     """Write the reports of freshly evaluated shifts into ``[report] folder`` (nothing when
-    none is configured). Failures are logged, never raised. Returns the paths written."""
+    none is configured). Only the newest ``[report] keep`` of them are written (a catch-up of
+    many shifts would delete the older pages again at once). Failures are logged, never
+    raised. Returns the paths written."""
     folder = report_folder(config)
     if folder is None:
         return []
+    order = _order(config)
+    newest = sorted(dict.fromkeys(shift_ids), key=lambda sid: _shift_key(sid, order))
     written = []
-    for shift_id in shift_ids:
+    for shift_id in newest[-max(1, int(config.report.keep)):]:
         try:
             written.append(write_shift_report(engine, config, shift_id, now=now, folder=folder))
         except Exception as exc:  # a report must never fail a committed evaluation
