@@ -98,7 +98,8 @@ class CategoryShift:
         return {
             "code": self.code,
             "direction": self.direction,
-            "adjusted_residual": round(self.adjusted_residual, 4),
+            "adjusted_residual": (round(self.adjusted_residual, 4)
+                                  if math.isfinite(self.adjusted_residual) else None),
             "observed": self.observed,
             "expected": round(self.expected, 4),
             "share": round(self.share, 6),
@@ -359,16 +360,12 @@ def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int
     codes = tuple(table.categories)
     powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
                           observed.sum(axis=1), [j.limits.alarm_level for j in jobs])
-    out = [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]))
-           for i in range(len(jobs))]
-    if reason is not None:
-        out = [dataclasses.replace(f, method_reason=reason) if f.method == "asymptotic" else f
-               for f in out]
-    return out
+    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]),
+                         reason) for i in range(len(jobs))]
 
 
 def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props: np.ndarray,
-                 codes: tuple[str, ...], power: float) -> Finding:
+                 codes: tuple[str, ...], power: float, reason: str | None = None) -> Finding:
     limits = job.limits
     n = int(observed.sum())
     expected = np.asarray(_attr(result, "expected", i), dtype=float)
@@ -408,7 +405,7 @@ def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props:
         power=power,
         power_needed=float(limits.power),
         method=str(_attr(result, "method", i)),
-        method_reason=_str_or_none(_attr(result, "method_reason", i)),
+        method_reason=reason or _str_or_none(_attr(result, "method_reason", i)),
         mc_se=_opt_float(_attr(result, "pvalue_se", i)),
         min_expected=_opt_float(_attr(result, "min_expected", i)),
         top_categories=top_shifts(codes, observed, expected, residuals, props),
@@ -482,7 +479,7 @@ def fit_lines(
 
 
 FAR_REASON = ("asymptotic chi-square: Cochran's rule holds and the multiplicity-adjusted "
-              "p-value is far from every decision level")
+              "p-value is far from every decision level (or maps to a raw level below 0.001)")
 NEAR_FACTOR = 3.0  # refine when the adjusted p is within this factor of a level (as stats does)
 # qcfit.stats refines a Monte Carlo p-value near a raw level L up to a 3% relative standard
 # error, about (1 - L)/(L 0.0009) draws: 110,000 at L = 0.01, its cap of 500,000 from L = 2e-3
@@ -618,7 +615,9 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
     total = col.sum()
     share = col[col > 0] / total
     rows_n = counts.sum(axis=1)
-    pair_e = [np.outer([n_i, total - n_i], share) for n_i in rows_n]  # 2 x c' expected counts
+    pair_e = np.stack([np.outer(rows_n, share), np.outer(total - rows_n, share)], axis=1)
+    small = (pair_e < 5.0).mean(axis=(1, 2))  # 2 x c' expected counts per line: Cochran's rule
+    pair_ok = (pair_e.min(axis=(1, 2)) >= 1.0) & (small <= 0.2)
     big = None
     try:
         big = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="asymptotic",
@@ -630,7 +629,7 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
     out = []
     for i, line in enumerate(table.lines):
         def one(i: int = i) -> Finding:
-            if big is not None and rows_n[i] > 0 and cochran_ok(pair_e[i]):
+            if big is not None and rows_n[i] > 0 and pair_ok[i]:
                 f = _vs_rest_finding(table, counts, i, big, i, limits, float(powers))
                 return dataclasses.replace(f, method_reason=_large_reason(pair_e[i]))
             pair = np.stack([counts[i], col - counts[i]])

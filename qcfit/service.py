@@ -201,8 +201,8 @@ def finding_row(f: ev.Finding) -> dict[str, Any]:
         "n": f.n,
         "min_expected": f.min_expected,
         "power": f.power,
-        "top_categories": [c.as_json() for c in f.top_categories],
     })
+    row["top_categories"] = [c.as_json() for c in f.top_categories]  # JSON-safe already
     details["categories"] = list(f.categories)
     details["observed"] = _floats(f.observed)
     details["expected"] = _floats(f.expected)
