@@ -278,7 +278,7 @@ def _bar_title(data: ReportData, line: str, f) -> str:
     word = {ALARM: "ALARM", WATCH: "WATCH", IN_CONTROL: "in control",
             TOO_LITTLE: "too little data"}.get(f.verdict, f.verdict.replace("-", " "))
     n = f.n
-    return f"{safe(line, 12)}: {word}\n{n:,} defects" + (
+    return f"{safe(line, 12)}: {word}\n{n:,} defect{'' if n == 1 else 's'}" + (
         f", w {f.effect_size:.2f}" if math.isfinite(f.effect_size)
         and f.verdict in (ALARM, WATCH, IN_CONTROL) else "")
 

@@ -91,6 +91,10 @@ def fmt_p(p: float) -> str:
     return f"{p:.4f}" if p < 0.01 else f"{p:.3f}" if p < 0.1 else f"{p:.2f}"
 
 
+def defects(n: int) -> str:
+    return f"{n:,} defect{'' if n == 1 else 's'}"
+
+
 def fmt_num(v: float, spec: str = ".2f") -> str:
     return format(v, spec) if math.isfinite(v) else "\u2013"
 
@@ -153,7 +157,7 @@ def too_little_lines(data: ReportData) -> list[tuple[str, str]]:
             if f is not None and f.verdict == TOO_LITTLE:
                 what = "mix" if kind == KIND_MIX else "rate"
                 floor = f"{f.effect_name} {f.effect_floor:g}" if math.isfinite(f.effect_floor) else ""
-                why.append(f"{what}: power {fmt_num(f.power)} to see {floor} with {f.n:,} defects")
+                why.append(f"{what}: power {fmt_num(f.power)} to see {floor} with {defects(f.n)}")
         if why:
             out.append((code, "; ".join(why)))
     return out
@@ -294,7 +298,7 @@ def _figure(f: FindingView | None, words) -> str:
     if f is None:
         return ""
     if f.verdict == TOO_LITTLE:
-        return f"{f.n:,} defects"
+        return defects(f.n)
     return words(f) if math.isfinite(f.effect_size) else ""
 
 
@@ -486,7 +490,7 @@ def _title_block(data: ReportData) -> str:
     return (f'<header class="top"><p class="kicker">qcfit shift report \u00b7 {e(plant)}</p>'
             f"<h1>Shift {e(s.id)}</h1><p class=\"when\">{e(when)} \u00b7 {len(data.lines)} lines, "
             f"{len(data.categories)} defect categories \u00b7 "
-            f"{sum(sum(r) for r in data.counts):,} defects</p></header>")
+            f"{defects(sum(sum(r) for r in data.counts))}</p></header>")
 
 
 def render_html(data: ReportData) -> str:
