@@ -14,7 +14,7 @@ from __future__ import annotations
 import logging
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
 from qcfit.errors import InvalidArgumentError
 from qcfit.stats import _checks
@@ -34,7 +34,13 @@ def _goodman(x: np.ndarray, alpha: float) -> np.ndarray:
 
 def _poisson_box(lo: np.ndarray, hi: np.ndarray, lam: np.ndarray) -> np.ndarray:
     """P(lo <= Z <= hi) for Z ~ Poisson(lam), elementwise (empty box -> 0)."""
-    return np.where(hi >= lo, stats.poisson.cdf(hi, lam) - stats.poisson.cdf(lo - 1, lam), 0.0)
+    return np.where(hi >= lo, _poisson_cdf(hi, lam) - _poisson_cdf(lo - 1, lam), 0.0)
+
+
+def _poisson_cdf(k: np.ndarray, lam: np.ndarray) -> np.ndarray:
+    """P(Z <= k) for Z ~ Poisson(lam); scipy.special.pdtr without the distribution overhead."""
+    k = np.asarray(k, dtype=float)
+    return np.where(k < 0, 0.0, special.pdtr(np.maximum(k, 0.0), lam))
 
 
 def _factorial_moment(lo, hi, r, lam):
@@ -67,19 +73,32 @@ def _sison_glaz(x: np.ndarray, alpha: float) -> np.ndarray:
     n = x.sum()
     if x.size < 7:
         log.warning("Sison-Glaz intervals with %d < 7 categories may be inaccurate", x.size)
-    c = 1
+    target = 1 - alpha
     with np.errstate(divide="ignore", invalid="ignore"):
-        nu_c, nu_next = _nu(c, x), _nu(c + 1, x)
-        while not nu_c <= 1 - alpha < nu_next:
-            if c > n:
-                log.warning("no Sison-Glaz solution for counts %s: Goodman intervals instead",
-                            x.astype(int).tolist())
-                return _goodman(x, alpha)
-            c += 1
-            nu_c, nu_next = nu_next, _nu(c + 1, x)
-    gamma = (1 - alpha - nu_c) / (nu_next - nu_c)
+        c = _first_c_above(x, target, int(n))
+        nu_c, nu_next = (_nu(c, x), _nu(c + 1, x)) if c is not None else (np.nan, np.nan)
+    if c is None or not nu_c <= target < nu_next:
+        log.warning("no Sison-Glaz solution for counts %s: Goodman intervals instead",
+                    x.astype(int).tolist())
+        return _goodman(x, alpha)
+    gamma = (target - nu_c) / (nu_next - nu_c)
     p = x / n
     return np.column_stack([np.maximum(p - c / n, 0.0), np.minimum(p + (c + 2 * gamma) / n, 1.0)])
+
+
+def _first_c_above(x: np.ndarray, target: float, n: int) -> int | None:
+    """Smallest integer c in [1, n] with nu(c + 1) > target, by bisection (nu grows with c:
+    a wider box covers more); None when even c = n does not reach it."""
+    lo, hi = 1, max(n, 1)
+    if not _nu(hi + 1, x) > target:
+        return None
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if _nu(mid + 1, x) > target:
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
 
 
 def multinomial_intervals(counts: object, confidence: float = 0.95, method: str = "goodman"
