@@ -610,3 +610,17 @@ def test_write_after_a_catch_up_writes_only_the_newest_keep(tmp_path):
     assert sorted(p.name for p in (tmp_path / "reports").iterdir()) == sorted(
         report_name(s) for s in ids[-2:])
     engine.dispose()
+
+
+def test_title_gives_real_hours_of_a_dst_night(jump_data):
+    """EU summer time ends on the last Sunday of October at 01:00 UTC (Directive 2000/84/EC):
+    on 2026-10-25, so a 22:00-06:00 Berlin night shift starting the 24th lasts 9 hours."""
+    from zoneinfo import ZoneInfo
+
+    berlin = ZoneInfo("Europe/Berlin")
+    night = dataclasses.replace(
+        jump_data.shift, start=dt.datetime(2026, 10, 24, 22, tzinfo=berlin),
+        end=dt.datetime(2026, 10, 25, 6, tzinfo=berlin))
+    html = render_html(dataclasses.replace(jump_data, shift=night))
+    assert "22:00 \u2013 06:00 (+1 d) Europe/Berlin, 9 h" in html
+    assert "14:00 Europe/Berlin, 8 h" in render_html(jump_data)

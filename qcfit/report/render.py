@@ -15,6 +15,7 @@ external load. Plants with many lines get the per-line charts for the lines that
 
 from __future__ import annotations
 
+import datetime as dt
 import html
 import math
 from collections.abc import Sequence
@@ -484,9 +485,12 @@ def _footer(data: ReportData) -> str:
 def _title_block(data: ReportData) -> str:
     s = data.shift
     plant = data.plant_name or "Plant"
-    when = (f"{s.start:%a %d %b %Y, %H:%M} \u2013 {s.end:%H:%M}"
-            + (f" (+{(s.end.date() - s.start.date()).days} d)" if s.end.date() != s.start.date()
-               else "") + f" {data.timezone_name}")
+    # real hours (7 or 9 on a DST night): aware datetimes sharing one tzinfo subtract as wall
+    # times in Python, so compare them in UTC
+    hours = (s.end.astimezone(dt.UTC) - s.start.astimezone(dt.UTC)).total_seconds() / 3600
+    next_day = f" (+{(s.end.date() - s.start.date()).days} d)" if s.end.date() != s.start.date() else ""
+    when = (f"{s.start:%a %d %b %Y, %H:%M} \u2013 {s.end:%H:%M}{next_day} {data.timezone_name}, "
+            f"{hours:g} h")
     return (f'<header class="top"><p class="kicker">qcfit shift report \u00b7 {e(plant)}</p>'
             f"<h1>Shift {e(s.id)}</h1><p class=\"when\">{e(when)} \u00b7 {len(data.lines)} lines, "
             f"{len(data.categories)} defect categories \u00b7 "
