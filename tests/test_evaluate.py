@@ -18,6 +18,9 @@ SHIFT = ShiftInstance(dt.datetime(2026, 1, 6, 12, tzinfo=UTC), dt.datetime(2026,
                       dt.date(2026, 1, 6), "A")
 CATS = ("SCR", "DNT", "FL", "SH", "BUR", "OTH")
 PROPS = (0.30, 0.25, 0.15, 0.12, 0.10, 0.08)
+# explicit floors, so the checks below do not move when the config defaults do
+LIMITS = Thresholds(min_effect_w=0.10, min_effect_v=0.10, alarm_level=0.01, watch_level=0.05,
+                    power=0.80)
 BASE = BaselineRef(version_id=3, name="plant", effective=dt.date(2026, 1, 5), categories=CATS,
                    proportions=PROPS, rate=0.012)
 
@@ -41,7 +44,7 @@ def by(findings, kind, line=None):
 def run(rows, units=None, baselines=None, thresholds=None, seed=11, cats=CATS):
     t = table(rows, units, cats)
     b = baselines if baselines is not None else {ln: BASE for ln in rows}
-    return ev.evaluate_table(t, b, thresholds or Thresholds(), seed=seed)
+    return ev.evaluate_table(t, b, thresholds or LIMITS, seed=seed)
 
 
 # --------------------------------------------------------------------------- fit to baseline
@@ -231,7 +234,7 @@ def test_derived_seeds_are_stable_and_distinct():
 
 def test_extra_findings_are_appended_unchanged():
     extra = ev.Finding(kind=ev.KIND_SEQUENTIAL, line="L1", verdict=ev.TESTED, reason="chart")
-    found = ev.evaluate_table(table({"L1": [30, 25, 15, 12, 10, 8]}), {"L1": BASE}, Thresholds(),
+    found = ev.evaluate_table(table({"L1": [30, 25, 15, 12, 10, 8]}), {"L1": BASE}, LIMITS,
                               seed=1, extra=[extra])
     assert found[-1] is extra
 
@@ -239,7 +242,7 @@ def test_extra_findings_are_appended_unchanged():
 def test_negative_counts_are_refused_naming_the_argument():
     bad = CountTable(SHIFT, ("L1",), CATS, np.array([[1, -1, 0, 0, 0, 0]]), np.array([np.nan]))
     with pytest.raises(ValueError, match=r"table.counts: has a negative count at \[0, 1\]"):
-        ev.evaluate_table(bad, {"L1": BASE}, Thresholds(), seed=1)
+        ev.evaluate_table(bad, {"L1": BASE}, LIMITS, seed=1)
 
 
 def test_refining_only_near_decisions_gives_the_same_verdicts_as_refining_everywhere():
@@ -248,7 +251,7 @@ def test_refining_only_near_decisions_gives_the_same_verdicts_as_refining_everyw
 
     rng = np.random.default_rng(20260105)
     shifted = np.array([0.26, 0.22, 0.24, 0.11, 0.10, 0.07])
-    t = Thresholds()
+    t = LIMITS
     crossings = 0
     for shift_no in range(8):
         rows = {f"L{i}": [int(x) for x in rng.multinomial(int(rng.integers(60, 300)),

@@ -117,8 +117,8 @@ def test_evaluation_records_what_reproduces_it(plant):
     assert ev_row["code_version"] == qcfit.__version__
     assert ev_row["seed"] == service.shift_seed(config.thresholds.seed, shift.id)
     assert ev_row["started_utc"] <= ev_row["finished_utc"]
-    kinds = sorted({f["kind"] for f in found})
-    assert kinds == ["baseline", "between-lines", "line-vs-rest", "rate"]
+    kinds = {f["kind"] for f in found}
+    assert {"baseline", "between-lines", "line-vs-rest", "rate"} <= kinds
     base = [f for f in found if f["kind"] == "baseline"]
     assert len(base) == 4
     assert all(f["baseline_version_id"] is not None for f in base)  # baseline version per test
