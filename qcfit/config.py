@@ -67,7 +67,9 @@ are strings ``"HH:MM"`` or ``"HH:MM:SS"`` (a bare TOML time needs seconds: ``06:
     ``alarm_level``  number in (0, 1), default 0.01. Adjusted p-value below this, with the
         effect at or above its floor, gives severity "alarm".
     ``watch_level``  number in (0, 1), >= alarm_level, default 0.05. Same for "watch".
-    ``min_effect_w``  number >= 0, default 0.10. Cohen's w floor for a baseline (mix) alarm.
+    ``min_effect_w``  number >= 0, default 0.30. Cohen's w floor for a baseline (mix) alarm
+        (Cohen's "medium" effect: a shift of 100-300 defects cannot show a smaller change with
+        useful power; small lasting changes are the sequential charts' job).
     ``min_effect_v``  number in [0, 1], default 0.10. Cramér's V floor for between-lines.
     ``min_rate_ratio``  number >= 1, default 1.25. Observed / baseline defect rate floor.
     ``multiple_testing``  ``"bh"`` (Benjamini-Hochberg), ``"holm"``, ``"by"``
@@ -181,7 +183,7 @@ Complete example (every key; the values shown are the defaults unless marked)::
     [thresholds]
     alarm_level = 0.01
     watch_level = 0.05
-    min_effect_w = 0.10
+    min_effect_w = 0.30
     min_effect_v = 0.10
     min_rate_ratio = 1.25
     multiple_testing = "bh"
@@ -359,7 +361,7 @@ class SourceSettings:
 
 DEFAULT_ALARM_LEVEL = 0.01
 DEFAULT_WATCH_LEVEL = 0.05
-DEFAULT_MIN_EFFECT_W = 0.10
+DEFAULT_MIN_EFFECT_W = 0.30
 DEFAULT_MIN_EFFECT_V = 0.10
 DEFAULT_MIN_RATE_RATIO = 1.25
 DEFAULT_MULTIPLE_TESTING = "bh"

@@ -47,7 +47,7 @@ OTH = "other"
 [thresholds]
 alarm_level = 0.01
 watch_level = 0.05
-min_effect_w = 0.10
+min_effect_w = 0.30
 min_effect_v = 0.10
 multiple_testing = "bh"
 
