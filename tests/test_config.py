@@ -372,7 +372,7 @@ def test_threshold_cross_checks(plant_config_text):
 
 
 def test_thresholds_read_and_integers_accepted_for_numbers(plant_config_text):
-    text = plant_config_text.replace("min_effect_w = 0.10", "min_effect_w = 1\nmc_draws = 2000\n"
+    text = plant_config_text.replace("min_effect_w = 0.30", "min_effect_w = 1\nmc_draws = 2000\n"
                                      'multiple_testing = "holm"').replace(
         'multiple_testing = "bh"', "")
     t = parse(text).thresholds
