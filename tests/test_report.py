@@ -306,9 +306,10 @@ def render_escape(text: str) -> str:
     return html.escape(text, quote=True)
 
 
-def test_every_chart_is_inline_svg_with_axis_labels(jump_html):
+def test_every_chart_is_inline_svg_with_axis_labels(jump_data, jump_html):
     svgs = re.findall(r"<svg\b.*?</svg>", jump_html, flags=re.S)
-    assert len(svgs) == 5  # mix, residual map, mix test, rate, Pareto (no sequential rows)
+    # mix, residual map, mix test, rate, Pareto, and the sequential charts when stored
+    assert len(svgs) == 5 + bool(jump_data.charts)
     for label in ("defects (count)", "adjusted residual", "adjusted p", "effect size w",
                   "defects per", "100 units (%)", "cumulative share (%)"):
         assert label in jump_html, label
@@ -334,8 +335,10 @@ def test_rendering_is_deterministic(jump_data):
     assert render_html(jump_data) == render_html(jump_data)
 
 
-def test_sequential_section_is_a_note_without_chart_rows(jump_html):
-    assert "No sequential chart values are stored" in jump_html
+def test_sequential_section_is_a_note_without_chart_rows(jump_data):
+    html = render_html(dataclasses.replace(jump_data, charts=()))
+    assert "No sequential chart values are stored" in html
+    assert "Sequential charts over the last" not in html
 
 
 def test_failed_evaluation_page_says_so(jump_data):
@@ -394,7 +397,9 @@ def test_safe_never_leaves_an_unescaped_dollar(text):
 
 
 def test_sequential_charts_are_drawn_when_rows_exist(tmp_path):
-    config, engine, ids = build_plant(tmp_path, shifts=6, jump_from=99)
+    text = plant_text() + "[sequential]\nenabled = false\n"
+    config, engine, ids = build_plant(tmp_path, text, shifts=6, jump_from=99)
+    assert gather(engine, config, ids[-1], now=NOW).charts == ()
     with write_tx(engine) as conn:
         for k, sid in enumerate(ids):
             row = shift_row(conn, sid).row_id
@@ -624,3 +629,38 @@ def test_title_gives_real_hours_of_a_dst_night(jump_data):
     html = render_html(dataclasses.replace(jump_data, shift=night))
     assert "22:00 \u2013 06:00 (+1 d) Europe/Berlin, 9 h" in html
     assert "14:00 Europe/Berlin, 8 h" in render_html(jump_data)
+
+
+def test_a_line_without_baseline_and_a_plant_without_units_still_render(tmp_path):
+    text = plant_text().replace('lines = "*"', 'lines = ["P1", "P2", "P3"]')
+    path = tmp_path / "plant.toml"
+    path.write_text(text, encoding="utf-8")
+    config = load_config(path)
+    engine = make_engine(f"sqlite:///{tmp_path / 'plant.sqlite'}")
+    init_store(engine, config, os_user="test", now=T0)
+    shift = ShiftCalendar.from_config(config).from_id("2026-03-03_A")
+    rows = ["shift,line,category,count"] + [
+        f"{shift.id},{ln},{c},{n}" for ln in config.lines for c, n in zip(CATS, (9, 7, 4, 3, 2, 1),
+                                                                         strict=True)]
+    (tmp_path / "c.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    after = shift.end + dt.timedelta(hours=1)
+    load_counts_file(engine, config, tmp_path / "c.csv", now=after, os_user="test")
+    service.evaluate_shifts(engine, config, [shift], now=after)
+    d = gather(engine, config, shift.id, now=NOW, history=1)
+    assert d.finding("baseline", "P4").verdict == "no-baseline"
+    assert all(math.isnan(u) for u in d.units) and len(d.history) == 1
+    html = render_html(d)
+    assert "no baseline" in html and "no units inspected recorded" in html
+    engine.dispose()
+
+
+def test_acknowledgement_note_and_person_are_shown_escaped(tmp_path):
+    from qcfit import alarmlog
+
+    config, engine, ids = build_plant(tmp_path, shifts=7, jump_from=6)
+    alarm = next(a for a in gather(engine, config, ids[-1], now=NOW).alarms if a.line == "P2")
+    alarmlog.acknowledge(engine, alarm.id, by="ana", note="mould <b>swapped</b> & checked",
+                         now=NOW)
+    html = render_html(gather(engine, config, ids[-1], now=NOW))
+    assert "acknowledged by ana: \u201cmould &lt;b&gt;swapped&lt;/b&gt; &amp; checked\u201d" in html
+    engine.dispose()

@@ -472,7 +472,7 @@ def _footer(data: ReportData) -> str:
         '<footer><div class="cols"><div><h3>Reproduce</h3><ul>'
         f"<li>evaluation #{ev.id}, {e(ev.status)}, finished "
         f"{e(ev.finished.astimezone(data.shift.start.tzinfo).strftime('%Y-%m-%d %H:%M'))}</li>"
-        f"<li>config hash {e(ev.config_hash[:16])}\u2026</li>"
+        f'<li>config hash <code class="hash">{e(ev.config_hash)}</code></li>'
         f"<li>qcfit {e(ev.code_version)}, Monte Carlo seed {ev.seed}</li>"
         f"<li>alarm level {lv.alarm_level:g}, watch level {lv.watch_level:g}, "
         f"multiple testing {e(lv.multiple_testing)}</li></ul>"

@@ -97,6 +97,7 @@ footer { margin-top: 10px; border-top: 2px solid var(--ink); padding-top: 2px;
 footer .cols { display: grid; grid-template-columns: 1fr 1fr; gap: 0 26px; }
 footer ul { padding-left: 15px; }
 .cautions li { margin-bottom: 2px; }
+code.hash { font: 10.5px/1.3 "DejaVu Sans Mono", Consolas, monospace; word-break: break-all; }
 .made { color: var(--muted); font-size: 11px; }
 
 @media screen and (max-width: 640px) {
@@ -127,5 +128,6 @@ footer ul { padding-left: 15px; }
   .block.tall { break-inside: auto; }
   footer { font-size: 7pt; break-inside: avoid; }
   .made { font-size: 6.5pt; }
+  code.hash { font-size: 6.5pt; }
 }
 """
