@@ -59,7 +59,12 @@ from qcfit.config import Config, load_config, resolve_path, store_url_for, timez
 from qcfit.errors import AlreadyRunningError, ConfigError, QcfitError, StoreError
 from qcfit.notify import Notifier
 from qcfit.store.engine import make_engine, store_info, to_utc_naive, write_tx
-from qcfit.store.heartbeat import Heartbeat, write_heartbeat
+from qcfit.store.heartbeat import (
+    Heartbeat,
+    alarm_changes_after,
+    last_alarm_event,
+    write_heartbeat,
+)
 from qcfit.store.lock import StoreLock, store_lock
 from qcfit.store.migrate import check_schema
 from qcfit.store.shifts import ensure_shifts
@@ -79,6 +84,7 @@ log = logging.getLogger(__name__)
 JOB_DEFAULTS = {"misfire_grace_time": None, "coalesce": True, "max_instances": 1}
 EXECUTOR_THREADS = 3  # start/wake/tick share one catch-up lock; beat runs beside them
 FAULT_ANCHOR_TRIES = 10
+_ACTION_WORDS = {policy.RAISE: "opened", policy.UPDATE: "updated", policy.AUTO_CLEAR: "cleared"}
 
 
 def utc_now() -> dt.datetime:
@@ -261,6 +267,9 @@ class Service:
         self._status = "starting"
         self._first_pull = True
         self._host = socket.gethostname()
+        self._announced: int | None = None  # alarm events up to this id are announced
+        self.beats = 0  # heartbeat rows written
+        self.evaluated = 0  # shifts evaluated by this process
 
     # --- pieces the tests call directly ----------------------------------------------
 
@@ -282,6 +291,8 @@ class Service:
             config = self.config
             self._last_wake = now
             self._status = "catching up"
+            if self._announced is None:
+                self._announced = last_alarm_event(self.engine)
             try:
                 if config.source is not None and not self._pull(config, now):
                     return []
@@ -291,6 +302,7 @@ class Service:
                                          progress=self._progress(done))
                 except _Stopping:
                     log.info("stopping: catch-up ended after %d shift(s)", len(done))
+                self.evaluated += len(done)
                 self._after(done, config)
                 return done
             finally:
@@ -299,10 +311,13 @@ class Service:
 
     def _progress(self, done: list[service.EvaluationSummary]
                   ) -> Callable[[int, int, service.EvaluationSummary], None]:
+        chunk = max(1, int(getattr(service, "CHUNK", 1)))
+
         def progress(i: int, n: int, summary: service.EvaluationSummary) -> None:
             done.append(summary)
             self._beat_mono = time.monotonic()  # a long catch-up is alive
-            if self.stop.is_set() and i < n:
+            # stop only after a whole write transaction (a chunk of shifts) has committed
+            if self.stop.is_set() and i < n and i % chunk == 0:
                 raise _Stopping()
         return progress
 
@@ -336,16 +351,29 @@ class Service:
         return min(now, hb.beat) if hb is not None else now
 
     def _after(self, done: list[service.EvaluationSummary], config: Config) -> None:
-        """Alarm lines in the log (after their commits) and notifications for new alarms."""
-        changes = [(a, "opened") for s in done for a in s.opened]
-        changes += [(a, "updated") for s in done for a in s.updated]
-        changes += [(a, "cleared") for s in done for a in s.cleared]
-        failed = sum(1 for s in done if not s.ok)
         if done:
             log.info("catch-up: %d shift(s) evaluated, %d failed, %d alarm(s) opened",
-                     len(done), failed, sum(len(s.opened) for s in done))
-        for alarm_id, action in changes:
-            self._announce(alarm_id, action, config)
+                     len(done), sum(1 for s in done if not s.ok),
+                     sum(len(s.opened) for s in done))
+        self.announce(config)
+
+    def announce(self, config: Config | None = None) -> int:
+        """One log line per alarm change the service made since the last call (they are
+        committed: read back from the store), and a notification per new alarm."""
+        config = config or self.config
+        try:
+            if self._announced is None:
+                self._announced = last_alarm_event(self.engine)
+                return 0
+            changes = alarm_changes_after(self.engine, self._announced,
+                                          by=alarmlog.SYSTEM_USER)
+        except QcfitError as exc:
+            log.error("alarm changes not announced: %s", exc)
+            return 0
+        for event_id, alarm_id, action in changes:
+            self._announce(alarm_id, _ACTION_WORDS.get(action, action), config)
+            self._announced = event_id
+        return len(changes)
 
     def _announce(self, alarm_id: int, action: str, config: Config) -> None:
         try:
@@ -362,10 +390,12 @@ class Service:
         if self._faults.get(source) == reason:
             return
         now = self.clock() if now is None else now
+        if self._announced is None:
+            self._announced = last_alarm_event(self.engine)
         got = record_service_fault(self.engine, self.config, reason, now=now, source=source)
         if got is not None:
             self._faults[source] = reason
-            self._announce(got[0], "opened" if got[1] else "updated", self.config)
+            self.announce()
 
     def beat(self, now: dt.datetime | None = None) -> bool:
         """Write the heartbeat row; the watchdog counts only beats that reached the store."""
@@ -379,6 +409,7 @@ class Service:
             log.error("heartbeat not written: %s", exc)
             return False
         self._beat_mono = time.monotonic()
+        self.beats += 1
         return True
 
     def healthy(self) -> bool:
@@ -569,9 +600,9 @@ class Service:
 
     def shutdown(self) -> None:
         sd_notify("STOPPING=1")
-        self._status = "stopped"
         if self.scheduler is not None and self.scheduler.running:
             self.scheduler.shutdown(wait=True)  # the catch-up in flight ends between shifts
+        self._status = "stopped"
         self.notifier.close(self.options.stop_timeout_s)
         if self.lock is not None and self.lock.held:
             try:
@@ -579,7 +610,8 @@ class Service:
             finally:
                 self.lock.release()
         self.engine.dispose()
-        log.info("qcfit service stopped")
+        log.info("qcfit service stopped: %d shift(s) evaluated, %d heartbeat(s) written",
+                 self.evaluated, self.beats)
         servicelog.reset()
 
 

@@ -38,8 +38,13 @@ def _now() -> dt.datetime:
               "and exit.")
 @click.option("--standby", is_flag=True,
               help="If another service holds the store, wait until it stops instead of exiting.")
+@click.option("--beat-seconds", type=click.FloatRange(0.01, 3600), default=30.0, hidden=True,
+              help="Heartbeat period (for tests and tuning).")
+@click.option("--poll-seconds", type=click.FloatRange(0.05, 3600), default=5.0, hidden=True,
+              help="How often a standby service tries the lock (for tests and tuning).")
 @click.pass_context
-def serve_command(ctx: click.Context, once: bool, standby: bool) -> None:
+def serve_command(ctx: click.Context, once: bool, standby: bool, beat_seconds: float,
+                  poll_seconds: float) -> None:
     """Run the qcfit service: evaluate every shift once, after its end plus the grace period.
 
     Stops cleanly on SIGTERM or Ctrl-C (an evaluation in flight is finished); SIGHUP or a
@@ -50,7 +55,9 @@ def serve_command(ctx: click.Context, once: bool, standby: bool) -> None:
 
     a = app(ctx)
     svc = Service(a.config_path, store_url=a.store_url_override,
-                  options=Options(standby=standby))
+                  options=Options(standby=standby, beat_s=beat_seconds,
+                                  standby_poll_s=poll_seconds,
+                                  loop_s=min(5.0, poll_seconds)))
     if once:
         done = svc.run_once()
         failed = [s for s in done if not s.ok]

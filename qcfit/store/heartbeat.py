@@ -1,6 +1,7 @@
-"""The service's heartbeat row: who runs, when it last beat, its last and next wake.
+"""The service's own bookkeeping in the store: the heartbeat row, and the alarm changes it
+has not yet announced (log line, notification).
 
-One row (``id = 1``) in table ``heartbeat``; the service rewrites it on every beat, in its
+Heartbeat: one row (``id = 1``) in table ``heartbeat``; the service rewrites it on every beat, in its
 own short write transaction, so ``qcfit status`` (another process) can tell whether a
 service is alive and what it is doing. Times are naive UTC in the store, aware UTC here.
 """
@@ -10,13 +11,14 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass
 
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.engine import Engine
 
 from qcfit.store.engine import from_utc_naive, read_tx, to_utc_naive, write_tx
-from qcfit.store.schema import heartbeat
+from qcfit.store.schema import alarm_event, heartbeat
 
-__all__ = ["Heartbeat", "read_heartbeat", "write_heartbeat"]
+__all__ = ["Heartbeat", "alarm_changes_after", "last_alarm_event", "read_heartbeat",
+           "write_heartbeat"]
 
 ROW_ID = 1
 MAX_STATUS = 32
@@ -82,3 +84,20 @@ def read_heartbeat(engine: Engine) -> Heartbeat | None:
         config_hash=row.config_hash,
         status=str(row.status),
     )
+
+
+def last_alarm_event(engine: Engine) -> int:
+    """The id of the newest alarm event (0 when there is none): a watermark."""
+    with read_tx(engine) as conn:
+        return int(conn.execute(select(func.coalesce(func.max(alarm_event.c.id), 0))).scalar_one())
+
+
+def alarm_changes_after(engine: Engine, event_id: int, *, by: str) -> list[tuple[int, int, str]]:
+    """Alarm events newer than ``event_id`` made by ``by`` (the service's user), oldest
+    first, as (event id, alarm id, action)."""
+    with read_tx(engine) as conn:
+        rows = conn.execute(
+            select(alarm_event.c.id, alarm_event.c.alarm_id, alarm_event.c.action)
+            .where(alarm_event.c.id > event_id, alarm_event.c.by == by)
+            .order_by(alarm_event.c.id)).all()
+    return [(int(r[0]), int(r[1]), str(r[2])) for r in rows]
