@@ -1,4 +1,5 @@
-"""Loading defect data: events CSV, per-shift counts CSV, and pulls from another database.
+"""Loading defect data: events CSV, per-shift counts CSV, units-inspected CSV, and pulls from
+another database.
 
 File formats (UTF-8, comma-separated, header line first; see :mod:`qcfit.ingest_csv` for the
 file rules and :mod:`qcfit.ingest_rows` for the cell rules)::
@@ -11,6 +12,9 @@ file rules and :mod:`qcfit.ingest_rows` for the cell rules)::
     2026-01-05_A,L1,SCR,12,4800                         # shift id: local start date _ name
     2026-01-05_A,L1,DNT,0,4800                          # units repeated on each row of the line
     2026-01-05_A,L2,SCR,0,5100                          # no defects: a 0 row still carries units
+
+    shift,line,units_inspected                         # units inspected per shift x line
+    2026-01-05_A,L1,4800                                # for lines whose counts come from events
 
 Rules of a load (one call = one store transaction):
 
@@ -31,6 +35,11 @@ Rules of a load (one call = one store transaction):
   audit row. Cells a file does not name are left as they are.
 * One shift x line gets its counts either from events or from a counts file, never both:
   rows that would mix them are bad rows (they say which).
+* A units file states units inspected per shift x line and nothing else, so it may be
+  loaded for any shift x line: one whose counts came from events (the only way such a line
+  gets units), from a counts file, or that has no defects stored yet. Restating stored
+  units with another value is a correction (``count_correction`` row with category NULL),
+  whichever file stated them before.
 * Every load that writes leaves one audit row in ``load``: kind, source, sha256 of the
   bytes, rows accepted and rejected, corrections, when (``now``), OS user and host; its
   ``note`` keeps the notes (what was accepted and how) and the rejects file's path.
@@ -75,11 +84,15 @@ from qcfit.ingest_rows import (
     COUNT_OPTIONAL,
     EVENT_COLUMNS,
     EVENT_OPTIONAL,
+    UNIT_COLUMNS,
+    UNIT_OPTIONAL,
     Ambiguous,
     CountBatch,
     EventBatch,
+    UnitBatch,
     validate_counts,
     validate_events,
+    validate_units,
 )
 from qcfit.store.defects import (
     Correction,
@@ -91,6 +104,7 @@ from qcfit.store.defects import (
     insert_load,
     read_events,
     record_corrections,
+    unit_cells,
     update_event_quantities,
     update_load,
     write_counts,
@@ -106,6 +120,7 @@ __all__ = [
     "default_rejects_path",
     "load_counts_file",
     "load_events_file",
+    "load_units_file",
     "pull",
     "spreadsheet_safe",
 ]
@@ -136,6 +151,7 @@ class LoadReport:
     events_restated: int = 0
     cells_written: int = 0
     units_written: int = 0
+    units_unchanged: int = 0
     corrections: int = 0
     shifts: tuple[str, ...] = ()
     rejects_path: str | None = None
@@ -150,6 +166,8 @@ class LoadReport:
             ]
         if self.load_id is None:
             return [f"{self.source}: nothing to load"] + [f"note: {n}" for n in self.notes]
+        if self.kind == "units":
+            return self._units_summary()
         out = [
             f"{self.source}: loaded {self.rows_accepted} of {self.rows_read} row(s) as load "
             f"{self.load_id}; {len(self.shifts)} shift(s), {self.cells_written} count cell(s) "
@@ -168,6 +186,18 @@ class LoadReport:
             out.append(f"{self.rows_rejected} bad row(s) written to {self.rejects_path}")
         out += [f"note: {n}" for n in self.notes]
         return out
+
+    def _units_summary(self) -> list[str]:
+        out = [
+            f"{self.source}: loaded {self.rows_accepted} of {self.rows_read} row(s) as load "
+            f"{self.load_id}; {len(self.shifts)} shift(s), {self.units_written} units inspected "
+            f"value(s) written, {self.corrections} correction(s)"
+        ]
+        if self.units_unchanged:
+            out.append(f"units inspected: {self.units_unchanged} value(s) already stored as given")
+        if self.rejects_path:
+            out.append(f"{self.rows_rejected} bad row(s) written to {self.rejects_path}")
+        return out + [f"note: {n}" for n in self.notes]
 
 
 @dataclass(frozen=True, slots=True)
@@ -256,6 +286,38 @@ def load_counts_file(
         source=str(path),
         audit_source=str(Path(path).resolve()),
         who=_Who(now, os_user, host),
+        skip_bad=skip_bad,
+        rejects=target,
+    )
+
+
+def load_units_file(
+    engine: Any,
+    config: Config,
+    path: str | Path,
+    *,
+    now: dt.datetime,
+    skip_bad: bool = False,
+    rejects: str | Path | None = None,
+    os_user: str | None = None,
+    host: str | None = None,
+) -> LoadReport:
+    """Load units inspected per shift x line (``shift,line,units_inspected``).
+
+    Allowed for any shift x line, whatever its counts came from (events or a counts file):
+    units are not counts. A stored value restated differently is a correction.
+    ``os_user``/``host`` default to ``"unknown"`` and ``""`` like the other loaders.
+    """
+    _require_aware(now)
+    data = _read_file(path)
+    target = Path(rejects) if rejects else default_rejects_path(path)
+    return _load_units(
+        engine,
+        config,
+        data,
+        source=str(path),
+        audit_source=str(Path(path).resolve()),
+        who=_Who(now, "unknown" if os_user is None else os_user, host or ""),
         skip_bad=skip_bad,
         rejects=target,
     )
@@ -725,7 +787,8 @@ def _without_event_lines(
         BadRow(
             int(counts["line_no"].iloc[i]) - (1 if row_numbers else 0),
             f"shift {counts['shift'].iloc[i]} line {counts['line'].iloc[i]} has raw defect events "
-            "(its counts are derived from them); correct it by loading events, not counts",
+            "(its counts are derived from them); correct it by loading events, not counts "
+            "(units inspected alone: qcfit load units)",
         )
         for i in np.flatnonzero(clash)
     ]
@@ -737,6 +800,104 @@ def _without_event_lines(
         counts[~clash].reset_index(drop=True),
         units[np.asarray(keep_units, dtype=bool)].reset_index(drop=True),
         bad,
+    )
+
+
+# --- units inspected ----------------------------------------------------------------------
+
+
+def _load_units(
+    engine: Any,
+    config: Config,
+    data: bytes,
+    *,
+    source: str,
+    audit_source: str,
+    who: _Who,
+    skip_bad: bool,
+    rejects: Path,
+) -> LoadReport:
+    kind = "units"
+    digest = hashlib.sha256(data).hexdigest()
+    prior = _already_loaded(engine, kind, digest, source)
+    if prior is not None:
+        return prior
+    table = read_table(data, source=source, required=UNIT_COLUMNS, optional=UNIT_OPTIONAL)
+    batch = validate_units(
+        table, lines=config.lines, calendar=ShiftCalendar.from_config(config), now=who.at
+    )
+    bad = list(batch.bad_rows)
+    _stop_if_bad(source, bad, len(batch.units), skip_bad)
+    with write_tx(engine) as conn:
+        prior = find_load(conn, kind, digest)
+        if prior is not None:
+            return _already(prior, kind, source, digest)
+        return _store_units(
+            conn,
+            batch,
+            table,
+            bad,
+            source=source,
+            audit_source=audit_source,
+            digest=digest,
+            who=who,
+            rejects=rejects,
+        )
+
+
+def _store_units(
+    conn,
+    batch: UnitBatch,
+    table: RawTable,
+    bad: list[BadRow],
+    *,
+    source: str,
+    audit_source: str,
+    digest: str,
+    who: _Who,
+    rejects: Path,
+) -> LoadReport:
+    ids = ensure_shifts(conn, list(batch.instances.values()))
+    units = batch.units.assign(shift_id=batch.units["shift"].map(ids).astype(np.int64))
+    load_id = insert_load(
+        conn,
+        kind="units",
+        source=audit_source,
+        content_hash=digest,
+        loaded=who.at,
+        os_user=who.os_user,
+        host=who.host,
+    )
+    before = len(unit_cells(conn, ids.values()))
+    changes = write_units(conn, units[["shift_id", "line", "units"]], load_id)
+    inserted = len(unit_cells(conn, ids.values())) - before
+    rejects_path = _write_rejects(rejects, table, bad, row_numbers=False) if bad else None
+    update_load(
+        conn,
+        load_id,
+        rows_accepted=len(units),
+        rows_rejected=len(bad),
+        corrections=len(changes),
+        note=_note_text(batch.notes, rejects_path),
+    )
+    written = inserted + len(changes)
+    log.info("%s: load %d, %d units values, %d corrections", source, load_id, written, len(changes))
+    return LoadReport(
+        "units",
+        source,
+        digest,
+        load_id,
+        False,
+        who.at,
+        rows_read=batch.rows_read,
+        rows_accepted=len(units),
+        rows_rejected=len(bad),
+        units_written=written,
+        units_unchanged=len(units) - written,
+        corrections=len(changes),
+        shifts=tuple(sorted(set(units["shift"]))),
+        rejects_path=rejects_path,
+        notes=batch.notes,
     )
 
 

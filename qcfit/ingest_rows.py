@@ -40,6 +40,13 @@ Counts (``shift,line,category,count[,units_inspected]``):
 * the key is (shift, line, category); a second row with the same key is a bad row;
 * ``units_inspected`` (optional) is the units inspected on that line in that shift; it may
   be left empty (unknown), and all non-empty cells of one shift and line must agree.
+
+Units inspected (``shift,line,units_inspected``), a file that only states units:
+
+* ``shift`` and ``line`` as in a counts file; the key is (shift, line), and a second row
+  with the same key is a bad row (even with the same value: one statement per key);
+* ``units_inspected`` is a whole number 0 .. :data:`MAX_COUNT`; an empty cell is a bad row
+  (the file exists only to state units).
 """
 
 from __future__ import annotations
@@ -66,6 +73,8 @@ EVENT_COLUMNS = ("timestamp", "line", "category")
 EVENT_OPTIONAL = ("quantity",)
 COUNT_COLUMNS = ("shift", "line", "category", "count")
 COUNT_OPTIONAL = ("units_inspected",)
+UNIT_COLUMNS = ("shift", "line", "units_inspected")
+UNIT_OPTIONAL: tuple[str, ...] = ()
 AMBIGUOUS_CHOICES = ("raise", "earlier", "later")
 
 _SHIFT_ID_RE = re.compile(r"(\d{4}-\d\d-\d\d)_(\S+)")
@@ -107,6 +116,21 @@ class CountBatch:
     """
 
     counts: pd.DataFrame
+    units: pd.DataFrame
+    instances: Mapping[str, ShiftInstance]
+    bad_rows: tuple[BadRow, ...]
+    notes: tuple[str, ...]
+    rows_read: int
+
+
+@dataclass(frozen=True, slots=True)
+class UnitBatch:
+    """Validated units inspected.
+
+    ``units`` columns: ``shift`` (shift id text), ``line``, ``units`` (int64), ``line_no``
+    (int64). ``instances`` maps every shift id used to its instance.
+    """
+
     units: pd.DataFrame
     instances: Mapping[str, ShiftInstance]
     bad_rows: tuple[BadRow, ...]
@@ -448,6 +472,40 @@ def validate_counts(
     bad = sorted(list(table.bad_rows) + problems.rows(table.line_nos), key=lambda b: b.line_no)
     used = {s: instances[s] for s in set(counts["shift"])}
     return CountBatch(counts, units, used, tuple(bad), tuple(notes), table.records)
+
+
+def validate_units(
+    table: RawTable,
+    *,
+    lines: Collection[str],
+    calendar: Calendar,
+    now: dt.datetime,
+) -> UnitBatch:
+    """Check a units-inspected table (``shift,line,units_inspected``)."""
+    frame = table.frame
+    problems = _Problems(len(frame))
+    shift_col, line_col, units_col = (_Column.of(frame[c]) for c in UNIT_COLUMNS)
+    instances, ok_shift = _check_shifts(problems, shift_col, calendar, now)
+    ok_line = _check_codes(problems, line_col, lines, "line")
+    units, ok_units, _ = _whole_numbers(problems, units_col, "units_inspected")
+    good = ok_shift & ok_line & ok_units
+    keys = pd.DataFrame({"s": shift_col.codes, "l": line_col.codes})
+    _mark_duplicates(problems, keys[good], table.line_nos, "shift and line")
+    good &= ~problems.bad_mask()
+    shift_ids = shift_col.values()
+    out = pd.DataFrame(
+        {
+            "shift": pd.array(shift_ids[good], dtype="str"),
+            "line": pd.array(line_col.values()[good], dtype="str"),
+            "units": units[good],
+            "line_no": table.line_nos[good],
+        }
+    )
+    notes = list(table.notes)
+    _note_spaces(notes, shift_col.spaced + line_col.spaced + units_col.spaced)
+    bad = sorted(list(table.bad_rows) + problems.rows(table.line_nos), key=lambda b: b.line_no)
+    used = {s: instances[s] for s in set(out["shift"])}
+    return UnitBatch(out, used, tuple(bad), tuple(notes), table.records)
 
 
 def _empty_units() -> pd.DataFrame:

@@ -247,7 +247,7 @@ def test_events_and_counts_do_not_mix_on_one_shift_and_line(plant_store, tmp_pat
         load_counts_file(plant_store.engine, plant_store.config, counts, now=NOW, **WHO)
     assert err.value.bad_rows[0].reason == (
         "shift 2026-01-05_A line L3 has raw defect events (its counts are derived from them); "
-        "correct it by loading events, not counts"
+        "correct it by loading events, not counts (units inspected alone: qcfit load units)"
     )
 
 

@@ -1,4 +1,4 @@
-"""Data commands: ``qcfit load events|counts FILE``, ``qcfit counts``, ``qcfit pull``,
+"""Data commands: ``qcfit load events|counts|units FILE``, ``qcfit counts``, ``qcfit pull``,
 ``qcfit loads``.
 
 File formats and load rules: see :mod:`qcfit.ingest` (and the README's "Data formats").
@@ -26,6 +26,7 @@ from qcfit.ingest import (
     LoadReport,
     load_counts_file,
     load_events_file,
+    load_units_file,
     pull,
     spreadsheet_safe,
 )
@@ -122,6 +123,25 @@ def load_counts_command(ctx: click.Context, file: str, skip_bad: bool, rejects: 
     """
     a = app(ctx)
     report = load_counts_file(
+        a.engine(), a.config(), file, now=_now(), skip_bad=skip_bad, rejects=rejects, **_who()
+    )
+    _echo_report(report)
+
+
+@load_group.command("units")
+@click.argument("file", type=click.Path(dir_okay=False))
+@_skip_bad
+@_rejects
+@click.pass_context
+def load_units_command(ctx: click.Context, file: str, skip_bad: bool, rejects: str | None) -> None:
+    """Load units inspected per shift and line: columns shift,line,units_inspected.
+
+    For lines whose counts come from defect events (or to restate the units of a counts
+    file): the rate test needs the units. A value that restates a stored one differently is
+    recorded as a correction.
+    """
+    a = app(ctx)
+    report = load_units_file(
         a.engine(), a.config(), file, now=_now(), skip_bad=skip_bad, rejects=rejects, **_who()
     )
     _echo_report(report)
