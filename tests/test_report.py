@@ -287,7 +287,8 @@ def test_headline_counts_alarms_names_lines_and_too_little_data(jump_data, jump_
     head = jump_html[jump_html.index('class="headline'):jump_html.index("<h2>Alarms</h2>")]
     assert f"{n_alarm} alarm" in head and "P2" in head
     assert "Look first at" in head and "flash" in head
-    assert "Too little data to tell" in head and "P4 (Bench cell)" in head
+    assert "Too little data to tell" in head and 'title="Bench cell">P4</b> mix and rate' in head
+    assert "is below 0.80" in head
 
 
 def test_footer_has_config_hash_baseline_version_and_cautions(jump_data, jump_html):

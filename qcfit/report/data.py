@@ -183,6 +183,7 @@ class Levels:
     min_effect_v: float
     min_rate_ratio: float
     multiple_testing: str
+    power: float  # power needed before "no alarm" is called in control
 
 
 @dataclass(frozen=True, slots=True)
@@ -437,7 +438,7 @@ def _levels(thresholds: Any) -> Levels:
         alarm_level=float(thresholds.alarm_level), watch_level=float(thresholds.watch_level),
         min_effect_w=float(thresholds.min_effect_w), min_effect_v=float(thresholds.min_effect_v),
         min_rate_ratio=float(thresholds.min_rate_ratio),
-        multiple_testing=str(thresholds.multiple_testing))
+        multiple_testing=str(thresholds.multiple_testing), power=float(thresholds.power))
 
 
 def _line_levels(base: Levels, tests: Sequence[FindingView], lines: Sequence[str]
@@ -457,7 +458,7 @@ def _line_levels(base: Levels, tests: Sequence[FindingView], lines: Sequence[str
                 min_effect_v=lv.min_effect_v,
                 min_rate_ratio=t.effect_floor if t.kind == KIND_RATE
                 and math.isfinite(t.effect_floor) else lv.min_rate_ratio,
-                multiple_testing=lv.multiple_testing)
+                multiple_testing=lv.multiple_testing, power=lv.power)
         out[line] = lv
     return out
 

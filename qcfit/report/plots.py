@@ -380,7 +380,7 @@ def mix_history(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) ->
     hist = {h.line: h for h in data.line_history}
     x = np.arange(len(data.history))
     with matplotlib.rc_context(RC):
-        fig, axes = panels(rows * 2, cols, row_h=0.62, top=0.2, bottom=0.34, left=0.62,
+        fig, axes = panels(rows * 2, cols, row_h=0.56, top=0.2, bottom=0.34, left=0.62,
                            right=0.2, hgap=0.1, wgap=0.32, ratios=[1.2, 0.8] * rows,
                            sharex=True)
         for a, line in enumerate(lines):
@@ -435,7 +435,7 @@ def rate_history(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -
     hist = {h.line: h for h in data.line_history}
     x = np.arange(len(data.history))
     with matplotlib.rc_context(RC):
-        fig, axes = panels(rows, cols, row_h=0.85, top=0.2, bottom=0.34, left=0.62, right=0.2,
+        fig, axes = panels(rows, cols, row_h=0.75, top=0.2, bottom=0.34, left=0.62, right=0.2,
                            hgap=0.3, wgap=0.32, sharex=True)
         for a, line in enumerate(lines):
             ax = axes[a // cols][a % cols]
@@ -477,6 +477,7 @@ SEQ_SHOWN = 4  # charts named and coloured (the same on every panel); the rest t
 SEQ_COLOURS = ("#2f67a0", "#b5472b", "#3d8a5a", "#7a4f9a")
 SEQ_STYLES = ("-", (0, (4, 1.5)), (0, (1, 1)), (0, (6, 2, 1, 2)))
 SEQ_WORDS = ("solid", "dashed", "dotted", "dash-dot")
+SEQ_CAP = 4.0  # the y axis ends at 400 % of the threshold; higher values are drawn there
 
 
 def sequential_key(data: ReportData, lines: Sequence[str]) -> list[tuple[str, str, str]]:
@@ -503,22 +504,22 @@ def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> 
     for s in data.charts:
         by_line.setdefault(s.line, []).append(s)
     with matplotlib.rc_context(RC):
-        fig, axes = panels(rows, cols, row_h=0.85, top=0.2, bottom=0.34, left=0.62, right=0.2,
+        fig, axes = panels(rows, cols, row_h=0.75, top=0.2, bottom=0.34, left=0.62, right=0.2,
                            hgap=0.3, wgap=0.32, sharex=True)
-        top = 1.2
         for a, line in enumerate(lines):
             ax = axes[a // cols][a % cols]
             mine = by_line.get(line, [])
+            peaks = [float(np.nanmax(r)) for r in (_ratio(s) for s in mine) if np.isfinite(r).any()]
+            top = min(max([1.2, *peaks]), SEQ_CAP)
             for s in mine:
-                ratio = 100 * _ratio(s)
-                if np.isfinite(ratio).any():
-                    top = max(top, float(np.nanmax(ratio)) / 100)
+                ratio = 100 * np.minimum(_ratio(s), top)  # beyond the cap: drawn at the top
                 i = style.get(s.chart)
                 if i is None:
                     ax.plot(x, ratio, color=FAINT, linewidth=0.5, zorder=1)
                 else:
                     ax.plot(x, ratio, color=SEQ_COLOURS[i], linestyle=SEQ_STYLES[i],
                             linewidth=1.0, zorder=3 - i * 0.1)
+            ax.set_ylim(0, 100 * top * 1.08)
             _hline(ax, 100.0, STATUS[ALARM], "-")
             if not mine:
                 ax.text(0.5, 0.5, "no chart values", transform=ax.transAxes, ha="center",
@@ -530,8 +531,6 @@ def sequential(data: ReportData, lines: Sequence[str], *, max_cols: int = 5) -> 
                 ax.set_ylabel("statistic /\nthreshold (%)")
             if a + cols < len(lines):
                 ax.tick_params(labelbottom=False)
-        for a in range(len(lines)):
-            axes[a // cols][a % cols].set_ylim(0, 100 * min(top, 5.0) * 1.08)
         for a in range(len(lines), rows * cols):
             axes[a // cols][a % cols].set_visible(False)
         return to_svg(fig, "sequential", "Sequential chart statistics over the last shifts")
@@ -563,7 +562,7 @@ def pareto(data: ReportData) -> str:
     total = float(values.sum())
     with matplotlib.rc_context(RC):
         longest = max((len(n) for n in names), default=4)
-        fig, axes = panels(1, 1, row_h=1.1, top=0.12, bottom=0.1 + 0.038 * longest, left=0.5,
+        fig, axes = panels(1, 1, row_h=0.95, top=0.12, bottom=0.1 + 0.038 * longest, left=0.5,
                            right=0.5, width=WIDTH * 0.55)
         ax = axes[0][0]
         x = np.arange(len(values))

@@ -164,6 +164,26 @@ def too_little_lines(data: ReportData) -> list[tuple[str, str]]:
     return out
 
 
+def _too_little_sentence(data: ReportData) -> str:
+    """e.g. "IM1 mix and rate (141 defects), IM5 rate (0 defects). Power to see the smallest
+    change that matters (mix w 0.35, rate ratio 1.25) is below 0.80." (HTML)."""
+    parts: list[str] = []
+    floors: dict[str, str] = {}
+    for code, name in data.lines:
+        tests = [f for f in (data.finding(KIND_MIX, code), data.finding(KIND_RATE, code))
+                 if f is not None and f.verdict == TOO_LITTLE]
+        if not tests:
+            continue
+        what = " and ".join("mix" if f.kind == KIND_MIX else "rate" for f in tests)
+        parts.append(f'<b title="{e(name)}">{e(code)}</b> {what} ({e(defects(tests[0].n))})')
+        for f in tests:
+            if math.isfinite(f.effect_floor):
+                floors.setdefault(f.kind, f"{f.effect_name} \u2265 {f.effect_floor:g}")
+    why = ", ".join(floors.values())
+    return (", ".join(parts) + f". Their power to see the smallest change that matters "
+            f"({e(why)}) is below {data.levels.power:.2f}.")
+
+
 def _span(values: Sequence[float], spec: str) -> str:
     lo, hi = min(values), max(values)
     return format(lo, spec) if format(lo, spec) == format(hi, spec) else (
@@ -228,12 +248,11 @@ def _headline(data: ReportData) -> str:
     little = too_little_lines(data)
     if little:
         if len(little) <= LIST_LINES:
-            items = "".join(f"<li><b>{e(_line_label(data, c))}</b>: {e(w)}</li>"
-                            for c, w in little)
+            body = _too_little_sentence(data)
         else:
-            items = "".join(f"<li>{e(text)}</li>" for text in _too_little_groups(data))
+            body = "<ul>" + "".join(f"<li>{e(t)}</li>" for t in _too_little_groups(data)) + "</ul>"
         out.append(f'<div class="little"><span class="lead">Too little data to tell</span> '
-                   f"(not the same as in control):<ul>{items}</ul></div>")
+                   f"(not the same as in control): {body}</div>")
     out.append("</section>")
     return "\n".join(out)
 
@@ -428,8 +447,8 @@ def _charts(data: ReportData) -> list[str]:
             f"Sequential charts over the last {n_hist} shifts",
             _chart_key(plots.sequential_key(data, shown)) + plots.sequential(data, shown),
             "Each chart's statistic as a share of its threshold: at 100% the chart signals a "
-            "lasting change. The charts that came nearest their threshold are named; any others are "
-            "thin grey lines."))
+            "lasting change (values above 400% are drawn at 400%). The charts that came nearest "
+            "their threshold are named; any others are thin grey lines."))
     else:
         out.append(_section("Sequential charts", "", "No sequential chart values are stored for "
                                                      "these shifts, so this section is empty.",
@@ -476,7 +495,7 @@ def _footer(data: ReportData) -> str:
         f"<li>qcfit {e(ev.code_version)}, Monte Carlo seed {ev.seed}</li>"
         f"<li>alarm level {lv.alarm_level:g}, watch level {lv.watch_level:g}, "
         f"multiple testing {e(lv.multiple_testing)}</li></ul>"
-        f"<h3>Baseline versions</h3><ul>{versions}</ul></div>"
+        f"</div><div><h3>Baseline versions</h3><ul>{versions}</ul></div>"
         f'<div><h3>Cautions</h3><ul class="cautions">{cautions}</ul></div></div>'
         f'<p class="made">Report made {e(data.generated.astimezone(data.shift.start.tzinfo).strftime("%Y-%m-%d %H:%M %Z"))} '
         "by qcfit.</p></footer>")

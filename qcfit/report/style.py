@@ -94,7 +94,7 @@ svg.chart { display: block; width: 100%; height: auto; margin: 2px 0 0; }
 
 footer { margin-top: 10px; border-top: 2px solid var(--ink); padding-top: 2px;
          font-size: 11.5px; color: #374151; }
-footer .cols { display: grid; grid-template-columns: 1fr 1fr; gap: 0 26px; }
+footer .cols { display: grid; grid-template-columns: 1.15fr 0.85fr 1.3fr; gap: 0 20px; }
 footer ul { padding-left: 15px; }
 .cautions li { margin-bottom: 2px; }
 code.hash { font: 10.5px/1.3 "DejaVu Sans Mono", Consolas, monospace; word-break: break-all; }
