@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 
 import qcfit
-from qcfit import alarmlog, policy
+from qcfit import alarmlog, charts, policy
 from qcfit import evaluate as ev
 from qcfit.baselines import baseline_in_force
 from qcfit.calendar import ShiftCalendar
@@ -247,7 +247,7 @@ def _evaluation_row(config: Any, shift_row_id: int, status: str, seed: int, star
 
 
 def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
-               seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
+               seed: int, now: dt.datetime, t0: float, extra: Any = None) -> EvaluationSummary:
     """Decide and write one shift's evaluation inside the caller's write transaction."""
     row_id = ensure_shifts(conn, [shift])[shift.id]
     active = alarmlog.active_alarms(conn, row_id)
@@ -259,6 +259,8 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
     esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
     applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
                                        shift_start_utc=to_utc_naive(shift.start), now=now)
+    if hasattr(extra, "write"):  # the sequential stage keeps its chart values in this transaction
+        extra.write(conn, shift, row_id)
     verdicts = Counter(f.verdict for f in decided.findings)
     return EvaluationSummary(
         shift_id=shift.id, evaluation_id=eval_id, status=OK, seed=seed, superseded_id=old,
@@ -268,9 +270,10 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
 
 
 def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
-            seed: int, now: dt.datetime, t0: float) -> EvaluationSummary:
+            seed: int, now: dt.datetime, t0: float, extra: Any = None) -> EvaluationSummary:
     # one write transaction; retried (from scratch) if the store stays locked
-    return run_write(engine, lambda conn: _write_one(conn, config, shift, findings, seed, now, t0))
+    return run_write(engine, lambda conn: _write_one(conn, config, shift, findings, seed, now, t0,
+                                                     extra))
 
 
 def _error_text(exc: BaseException) -> str:
@@ -341,12 +344,14 @@ def evaluate_shift(
         raise InvalidArgumentError("now", "pass an aware datetime")
     t0 = time.perf_counter()
     seed = shift_seed(config.thresholds.seed, shift.id)
+    if extra is None:
+        extra = charts.stage_for(engine, config, now=now)
     try:
         if versions is None:
             versions = sync_versions(engine, config, now=now, os_user=os_user)
         (table,) = _read_tables(engine, config, [shift])
         findings = _compute(config, versions, table, seed, extra)
-        summary = _commit(engine, config, shift, findings, seed, now, t0)
+        summary = _commit(engine, config, shift, findings, seed, now, t0, extra)
     except Exception as exc:
         return _record_failure(engine, config, shift, exc, seed, now, t0)
     _log_done(summary)
@@ -369,7 +374,7 @@ def _evaluate_chunk(engine: Any, config: Any, shifts: Sequence[ShiftInstance], *
         computed = [(s, seed, _compute(config, versions, t, seed, extra))
                     for (s, seed), t in zip(work, tables, strict=True)]
         out = run_write(engine, lambda conn: [
-            _write_one(conn, config, s, found, seed, now, t0) for s, seed, found in computed])
+            _write_one(conn, config, s, found, seed, now, t0, extra) for s, seed, found in computed])
     except Exception as exc:
         log.warning("evaluating %d shifts together failed (%s); going shift by shift",
                     len(shifts), _error_text(exc))
@@ -395,6 +400,10 @@ def evaluate_shifts(
     write transaction."""
     if not shifts:
         return []
+    if extra is None:  # sequential charts: later shifts with chart values are redone too
+        extra = charts.stage_for(engine, config, now=now)
+    if hasattr(extra, "expand"):
+        shifts = extra.expand(shifts)
     versions = sync_versions(engine, config, now=now, os_user=os_user)
     out: list[EvaluationSummary] = []
     for start in range(0, len(shifts), max(1, chunk)):
