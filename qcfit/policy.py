@@ -201,7 +201,7 @@ def describe_category(c: CategoryShift, names: Mapping[str, str], reference: str
 
 def describe(f: Finding, names: Mapping[str, str], vs_rest: Sequence[Finding] = ()) -> str:
     """What changed, in words, for the alarm summary."""
-    if f.verdict == ev.FAULT:
+    if f.verdict == ev.FAULT or f.kind == ev.KIND_SEQUENTIAL:  # sequential: the chart's own words
         return f.reason
     if f.kind == ev.KIND_RATE:
         d = f.details
@@ -340,8 +340,9 @@ def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names,
         target = (live or mine or [None])[0]
         if target is not None:
             return [_update(target, shift_id, figs, kind, line)]
-        if kind != KIND_FAULT and not _persistent(crossed_before, thresholds.persistence_k,
-                                                   thresholds.persistence_m):
+        # a sequential chart already accumulates evidence across shifts: no k-of-m rule on top
+        if kind not in (KIND_FAULT, ev.KIND_SEQUENTIAL) and not _persistent(
+                crossed_before, thresholds.persistence_k, thresholds.persistence_m):
             return [AlarmDecision(action=NOT_YET, kind=kind, line=line, shift_id=shift_id,
                                   note=f"crossed, but fewer than {thresholds.persistence_k} of "
                                        f"the last {thresholds.persistence_m} shifts did", **figs)]
