@@ -302,7 +302,16 @@ def test_pull_without_source_section(plant_store):
 
 
 @pytest.mark.parametrize(
-    "args", [["load", "events"], ["load", "counts"], ["counts"], ["pull"], ["load"], ["loads"]]
+    "args",
+    [
+        ["load", "events"],
+        ["load", "counts"],
+        ["load", "units"],
+        ["counts"],
+        ["pull"],
+        ["load"],
+        ["loads"],
+    ],
 )
 def test_help(args):
     result = CliRunner().invoke(main, [*args, "--help"])
@@ -339,3 +348,98 @@ def test_loads_shows_the_audit_trail(plant_store, tmp_path):
     assert row["source"] == str(path.resolve()) and len(row["sha256"]) == 64
     table = run(plant_store, "loads").stdout
     assert "events  2 ok, 0 bad, 0 corr." in table and row["sha256"][:12] in table
+
+
+# ------------------------------------------------------------------------ qcfit load units
+
+UNITS = "shift,line,units_inspected\n2026-01-05_A,L1,4800\n2026-01-05_A,L2,5100\n"
+
+
+def _units_of(store) -> list[tuple]:
+    import sqlite3
+
+    with sqlite3.connect(store.url.removeprefix("sqlite:///")) as con:
+        return con.execute(
+            "SELECT s.shift_date || '_' || s.shift_name, u.line, u.units FROM units_inspected u "
+            "JOIN shift s ON s.id = u.shift_id ORDER BY 1, 2"
+        ).fetchall()
+
+
+def test_load_units_after_events(plant_store, tmp_path):
+    assert run(plant_store, "load", "events", str(put(tmp_path, "e.csv", GOOD))).exit_code == 0
+    path = put(tmp_path, "u.csv", UNITS)
+    result = run(plant_store, "load", "units", str(path))
+    assert (result.exit_code, result.stderr) == (0, "")
+    assert result.stdout.splitlines() == [
+        f"{path}: loaded 2 of 2 row(s) as load 2; 1 shift(s), 2 units inspected value(s) "
+        "written, 0 correction(s)"
+    ]
+    assert _units_of(plant_store) == [("2026-01-05_A", "L1", 4800), ("2026-01-05_A", "L2", 5100)]
+    rows = json.loads(run(plant_store, "loads", "--format", "json").stdout)
+    assert [(r["kind"], r["rows_accepted"], r["corrections"]) for r in rows] == [
+        ("units", 2, 0),
+        ("events", 2, 0),
+    ]
+    assert "units   2 ok, 0 bad, 0 corr." in run(plant_store, "loads").stdout
+
+
+def test_load_units_bad_rows_exit_2_and_store_unchanged(plant_store, tmp_path):
+    run(plant_store, "load", "events", str(put(tmp_path, "e.csv", GOOD)))
+    before = plant_store.dump()
+    path = put(
+        tmp_path,
+        "u.csv",
+        UNITS + "2026-01-05_A,L1,4900\n2026-01-05_B,L3,\n2026-01-05_B,L4,12.5\n"
+        "2026-01-05_C,L4,-3\n2026-01-05_C,L1,2000000000\n",
+    )
+    result = run(plant_store, "load", "units", str(path))
+    assert result.exit_code == 2
+    assert result.stdout == ""
+    assert result.stderr.splitlines() == [
+        f"Error: {path}: 5 bad row(s), nothing was loaded:",
+        f"  {path}: line 4: duplicate of line 2 (same shift and line)",
+        f"  {path}: line 5: units_inspected is empty",
+        f"  {path}: line 6: units_inspected '12.5' is not a whole number",
+        f"  {path}: line 7: units_inspected '-3' is negative",
+        f"  {path}: line 8: units_inspected 2000000000 is larger than 1,000,000,000 (not a "
+        "plausible count for one row: a unit or export error?)",
+    ]
+    assert plant_store.dump() == before
+
+
+def test_load_units_twice_and_a_correction(plant_store, tmp_path):
+    path = put(tmp_path, "u.csv", UNITS)
+    assert run(plant_store, "load", "units", str(path)).exit_code == 0
+    before = plant_store.dump()
+    again = run(plant_store, "load", "units", str(path))
+    assert again.exit_code == 0
+    assert again.stdout.startswith(f"{path}: already loaded (load 1 at ")
+    assert again.stdout.endswith("UTC, same content); nothing changed\n")
+    assert plant_store.dump() == before
+    fix = put(tmp_path, "fix.csv", UNITS.replace("4800", "4750"))
+    result = run(plant_store, "load", "units", str(fix))
+    assert result.exit_code == 0
+    assert result.stdout.splitlines() == [
+        f"{fix}: loaded 2 of 2 row(s) as load 2; 1 shift(s), 1 units inspected value(s) "
+        "written, 1 correction(s)",
+        "units inspected: 1 value(s) already stored as given",
+    ]
+    assert _units_of(plant_store) == [("2026-01-05_A", "L1", 4750), ("2026-01-05_A", "L2", 5100)]
+    rows = json.loads(run(plant_store, "loads", "--format", "json").stdout)
+    assert (rows[0]["kind"], rows[0]["corrections"]) == ("units", 1)
+
+
+def test_load_units_skip_bad(plant_store, tmp_path):
+    path = put(tmp_path, "u.csv", UNITS + "2026-01-05_A,L9,100\n")
+    result = run(plant_store, "load", "units", str(path), "--skip-bad")
+    assert result.exit_code == 0
+    target = tmp_path / "u.rejects.csv"
+    assert result.stdout.splitlines()[1:] == [f"1 bad row(s) written to {target}"]
+    assert list(csv.DictReader(io.StringIO(target.read_text(encoding="utf-8")))) == [
+        {
+            "line_no": "4",
+            "reason": "unknown line 'L9' (not in [lines] of the config)",
+            "raw": "2026-01-05_A,L9,100",
+        }
+    ]
+    assert _units_of(plant_store) == [("2026-01-05_A", "L1", 4800), ("2026-01-05_A", "L2", 5100)]
