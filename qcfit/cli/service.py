@@ -201,9 +201,9 @@ def systemd_unit(*, python: str, config_path: Path, store: str | None, user: str
 # qcfit service for {config_path}
 # Install: save as /etc/systemd/system/qcfit.service, then
 #   systemctl daemon-reload && systemctl enable --now qcfit
+# See the README, "Running as a service".
 [Unit]
 Description=qcfit shift quality monitor ({config_path.name})
-Documentation=man:qcfit(1)
 After=network-online.target
 Wants=network-online.target
 StartLimitIntervalSec=600
@@ -214,7 +214,7 @@ Type=notify
 NotifyAccess=main
 ExecStart={" ".join(_arg(a) for a in argv)}
 ExecReload=/bin/kill -HUP $MAINPID
-WorkingDirectory={_arg(str(config_path.parent))}
+WorkingDirectory={str(config_path.parent).replace("%", "%%")}
 {account}UMask=0002
 Restart=on-failure
 RestartSec=10
