@@ -390,7 +390,8 @@ def _check_person(by: str) -> str:
 
 
 def _change(engine: Any, alarm_id: int, *, by: str, note: str | None, now: dt.datetime,
-            allowed: Sequence[str], to_state: str, action: str) -> AlarmView:
+            allowed: Sequence[str], to_state: str, action: str,
+            cause_removed: bool = False) -> AlarmView:
     person = _check_person(by)
     now_utc = to_utc_naive(now)
     with write_tx(engine) as conn:
@@ -402,6 +403,8 @@ def _change(engine: Any, alarm_id: int, *, by: str, note: str | None, now: dt.da
             raise InvalidArgumentError("ID", _refusal(conn, row, action))
         if not sql.set_state(conn, row["id"], expected_state=state, state=to_state, at_utc=now_utc):
             raise InvalidArgumentError("ID", f"alarm {alarm_id} changed meanwhile; try again")
+        if cause_removed:  # the line's sequential charts start afresh from the next shift
+            note = _reset_charts(conn, row, person, note)
         _event(conn, row["id"], action, now_utc=now_utc, shift_row=None, from_state=state,
                to_state=to_state, note=(note or None), by=person)
         out = view(sql.get_alarm(conn, row["id"]))  # type: ignore[arg-type]
@@ -420,10 +423,24 @@ def _refusal(conn: Any, row: Mapping[str, Any], action: str) -> str:
 
 
 def acknowledge(engine: Any, alarm_id: int, *, by: str, note: str | None = None,
-                now: dt.datetime) -> AlarmView:
-    """open -> acknowledged, recording who, when and an optional note."""
+                now: dt.datetime, cause_removed: bool = False) -> AlarmView:
+    """open -> acknowledged, recording who, when and an optional note. ``cause_removed``:
+    the line's sequential charts restart from the next shift (the note says after which)."""
     return _change(engine, alarm_id, by=by, note=note, now=now, allowed=(OPEN,),
-                   to_state=ACKNOWLEDGED, action="acknowledge")
+                   to_state=ACKNOWLEDGED, action="acknowledge", cause_removed=cause_removed)
+
+
+def _reset_charts(conn: Any, row: Mapping[str, Any], person: str, note: str | None) -> str:
+    from qcfit.store import charts as chart_sql
+
+    if not row.get("line"):
+        raise InvalidArgumentError("--cause-removed", f"alarm {row['id']} is not tied to one "
+                                   "line; there are no line charts to reset")
+    marked = chart_sql.mark_reset(conn, row["line"], f"alarm {row['id']} acknowledged by "
+                                                     f"{person}, cause removed")
+    words = (f"cause removed: sequential charts of {row['line']} restart after {marked}"
+             if marked else f"cause removed ({row['line']} has no chart values yet)")
+    return f"{note}; {words}" if note else words
 
 
 def clear(engine: Any, alarm_id: int, *, by: str, note: str, now: dt.datetime) -> AlarmView:
