@@ -246,13 +246,19 @@ def alarm_command(ctx: click.Context, alarm_id: int) -> None:
 @click.argument("alarm_id", metavar="ID", type=int)
 @click.option("--by", "by", required=True, metavar="NAME", help="Who acknowledges.")
 @click.option("--note", default=None, metavar="TEXT", help="Optional note.")
+@click.option("--cause-removed", is_flag=True,
+              help="The cause is fixed: the line's sequential charts restart from the next shift.")
 @click.pass_context
-def ack_command(ctx: click.Context, alarm_id: int, by: str, note: str | None) -> None:
+def ack_command(ctx: click.Context, alarm_id: int, by: str, note: str | None,
+                cause_removed: bool) -> None:
     """Acknowledge an open alarm."""
     from qcfit import alarmlog
 
-    alarm = alarmlog.acknowledge(app(ctx).engine(), alarm_id, by=by, note=note, now=_now())
-    click.echo(f"Alarm {alarm.id} acknowledged by {by.strip()}.")
+    alarm = alarmlog.acknowledge(app(ctx).engine(), alarm_id, by=by, note=note, now=_now(),
+                                 cause_removed=cause_removed)
+    click.echo(f"Alarm {alarm.id} acknowledged by {by.strip()}."
+               + (f" Sequential charts of {alarm.line} restart from the next shift."
+                  if cause_removed else ""))
 
 
 @main.command("clear")
