@@ -33,6 +33,9 @@ Rules (documented in the README):
   s. Evaluating a shift older than the latest chart rows re-evaluates every later shift that
   has chart rows, in order (:meth:`ChartStage.expand`), so later values never rest on an
   outdated past.
+* **After a signal** the CUSUMs carried to the next shift are held at 1.5 x their limit
+  (:func:`capped`), so a chart comes back below its limit within a few shifts once a large
+  change is over; the alarm stays open (updated) while any chart is at its limit.
 * **Start of the change**: a signal names the shift where the change most likely began (the
   CUSUM's last zero + 1; for the MEWMA the shift after it last sat at or below its in-control
   mean k - 1).
@@ -84,6 +87,7 @@ N_GRID = 4  # grid steps per doubling of the typical total
 PROFILE_POINTS = 20
 CALIBRATION_VERSION = 1
 CHAIN_LOOKBACK = 5000
+CUSUM_CAP = 1.5  # CUSUM values carried on are held at most this multiple of their limit
 CALIBRATED = "calibrated"
 CONSERVATIVE = "conservative"
 
@@ -327,7 +331,22 @@ def advance(plan: LinePlan, prior: PriorCharts | None, counts: Sequence[int] | n
     state = init_state(plan.design) if started else state_from_rows(plan, prior.states)
     new, step = update(state, x, plan.design, lim.limits)
     reports = tuple(signal_reports(step, new, plan.design, lim.limits))
+    new = capped(new, lim.limits)
     return LineStep(rows_for(plan, new, step, lim), new, step, reports, started, int(x.sum()))
+
+
+def capped(state: SequentialState, limits: SequentialLimits, cap: float = CUSUM_CAP
+           ) -> SequentialState:
+    """The state carried to the next shift, with every CUSUM held at most ``cap`` x its limit.
+
+    Only values already past the limit change, so the run length to the first signal (and
+    so the calibration) is untouched; after a large change ends, the charts come back below
+    their limits within a few shifts instead of working off a huge excess (common practice,
+    no source: a chart is restarted after a signal).
+    """
+    cs = np.minimum(state.cusum_s, cap * limits.concerns)
+    bs = np.minimum(state.bank_s, cap * limits.bank[:, None])
+    return dataclasses.replace(state, cusum_s=_ro(cs), bank_s=_ro(bs))
 
 
 # ---------------------------------------------------------------------------------------
