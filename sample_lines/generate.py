@@ -12,7 +12,10 @@ and numpy, reads nothing, and writes the same bytes on every run:
 * ``data/shift_counts.csv``  ``shift,line,category,count,units_inspected``: the same rejects
   summed per shift x line x category (zeros included) with the units inspected on that line in
   that shift, the shift named by its id (local start date + shift name, ``2026-10-07_B``).
-  This is qcfit's counts format; it is the only place the units inspected are given.
+  This is qcfit's counts format.
+* ``data/units_inspected.csv``  ``shift,line,units_inspected``: the same units inspected, one row
+  per shift x line, for a plant that loads the raw events (``qcfit load units``); the values
+  are those of ``shift_counts.csv``.
 * ``data/truth.csv``  per shift x line: the true mix and rate the counts were drawn from, the
   phase (in-control / fault) and the true Cohen's w against the approved baseline mix. It is
   for the tests and the scenario text, not for loading.
@@ -199,16 +202,18 @@ def _local_iso(ts_utc: dt.datetime, tz: ZoneInfo) -> str:
 
 
 def generate(out: Path) -> dict[str, Path]:
-    """Write the three data files into ``out`` (created if needed); return their paths."""
+    """Write the four data files into ``out`` (created if needed); return their paths."""
     tz = ZoneInfo(TIMEZONE)
     rng = np.random.default_rng(SEED)
     shifts = shift_instances()
     events = io.StringIO(newline="")
     counts = io.StringIO(newline="")
+    units = io.StringIO(newline="")
     truth = io.StringIO(newline="")
-    ev, co, tr = (csv.writer(f, lineterminator="\n") for f in (events, counts, truth))
+    ev, co, un, tr = (csv.writer(f, lineterminator="\n") for f in (events, counts, units, truth))
     ev.writerow(["timestamp", "line", "category", "quantity"])
     co.writerow(["shift", "line", "category", "count", "units_inspected"])
+    un.writerow(["shift", "line", "units_inspected"])
     tr.writerow(["shift", "line", "phase", "units_inspected", "true_rate", "expected_defects",
                  "defects", "true_cohen_w", *(f"true_share_{c}" for c in CATEGORIES)])
     for index, shift in enumerate(shifts):
@@ -219,6 +224,7 @@ def generate(out: Path) -> dict[str, Path]:
             rows.extend(_event_rows(rng, shift, line, got.counts))
             co.writerows([shift.id, line, c, int(x), got.units]
                          for c, x in zip(CATEGORIES, got.counts, strict=True))
+            un.writerow([shift.id, line, got.units])
             p0 = np.array(MIX[LINES[line].group])
             tr.writerow([shift.id, line, phase, got.units, f"{rate:.6f}",
                          f"{got.units * rate:.2f}", int(got.counts.sum()),
@@ -231,9 +237,11 @@ def generate(out: Path) -> dict[str, Path]:
     paths = {
         "events": out / "defect_events.csv",
         "counts": out / "shift_counts.csv",
+        "units": out / "units_inspected.csv",
         "truth": out / "truth.csv",
     }
-    for key, buffer in (("events", events), ("counts", counts), ("truth", truth)):
+    buffers = {"events": events, "counts": counts, "units": units, "truth": truth}
+    for key, buffer in buffers.items():
         paths[key].write_bytes(buffer.getvalue().encode("utf-8"))
     return paths
 

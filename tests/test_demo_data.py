@@ -30,14 +30,16 @@ from qcfit.ingest_rows import (
     COUNT_OPTIONAL,
     EVENT_COLUMNS,
     EVENT_OPTIONAL,
+    UNIT_COLUMNS,
     validate_counts,
     validate_events,
+    validate_units,
 )
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_lines"
 DATA = SAMPLE / "data"
-DATA_FILES = ("defect_events.csv", "shift_counts.csv", "truth.csv")
+DATA_FILES = ("defect_events.csv", "shift_counts.csv", "units_inspected.csv", "truth.csv")
 # The store is loaded after the data end; validation takes "now" as a parameter.
 LOAD_TIME = dt.datetime(2026, 12, 1, 12, 0, tzinfo=dt.UTC)
 
@@ -148,6 +150,8 @@ def test_data_files_are_plain_csv_of_a_few_megabytes() -> None:
     assert header == "timestamp,line,category,quantity"
     counts_header = (DATA / "shift_counts.csv").read_text(encoding="utf-8").splitlines()[0]
     assert counts_header == "shift,line,category,count,units_inspected"
+    units_header = (DATA / "units_inspected.csv").read_text(encoding="utf-8").splitlines()[0]
+    assert units_header == "shift,line,units_inspected"
 
 
 def test_config_describes_the_generated_plant(config: Config) -> None:
@@ -266,6 +270,9 @@ def test_counts_units_and_truth_agree(counts: pd.DataFrame, truth: pd.DataFrame,
     units = per_shift.groupby(["shift", "line"], sort=False)["units_inspected"].agg(["min", "max"])
     assert (units["min"] == units["max"]).all()
     assert units["min"].tolist() == by_shift_line["units_inspected"].tolist()
+    units_file = pd.read_csv(DATA / "units_inspected.csv")  # the raw-event path's units
+    assert list(zip(units_file["shift"], units_file["line"], strict=True)) == list(counts.index)
+    assert units_file["units_inspected"].tolist() == units["min"].tolist()
     assert set(events["quantity"]) == {1, 2, 3}
     assert not events.duplicated(["timestamp", "line", "category"]).any()
 
@@ -295,7 +302,7 @@ def test_qcfit_calendar_gives_the_same_shifts(config: Config, windows: pd.DataFr
         counts.groupby(level="shift", sort=False).sum().sum(axis=1).tolist())
 
 
-def test_qcfit_accepts_every_row_of_both_data_files(config: Config) -> None:
+def test_qcfit_accepts_every_row_of_the_data_files(config: Config) -> None:
     calendar = ShiftCalendar.from_config(config)
     options = dict(lines=config.lines, categories=config.categories, calendar=calendar,
                    now=LOAD_TIME)
@@ -311,6 +318,12 @@ def test_qcfit_accepts_every_row_of_both_data_files(config: Config) -> None:
     counts = validate_counts(table, **options)
     assert counts.bad_rows == () and len(counts.counts) == 198 * 5 * 8
     assert len(counts.units) == 198 * 5 and int(counts.counts["count"].sum()) == 145_851
+    path = DATA / "units_inspected.csv"
+    table = read_table(path.read_bytes(), source=str(path), required=UNIT_COLUMNS)
+    units = validate_units(table, lines=config.lines, calendar=calendar, now=LOAD_TIME)
+    assert units.bad_rows == () and len(units.units) == 198 * 5
+    assert units.units.sort_values(["shift", "line"])["units"].tolist() == (
+        counts.units.sort_values(["shift", "line"])["units"].tolist())
 
 
 # ----------------------------------------------------------------------------- the faults
