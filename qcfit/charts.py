@@ -483,7 +483,7 @@ class ChartStage:
                  paths: int = DEFAULT_PATHS) -> None:
         self.engine = engine
         self.config = config
-        self.now = now
+        self.stamp = now  # when calibrations made in this run are recorded
         self.paths = paths
         self._limits: dict[str, LineLimits] = {}
         self._done: dict[str, list[_Done]] = {}  # line -> computed this run, in start order
@@ -606,7 +606,7 @@ class ChartStage:
                         "key": key, "chart": ",".join(plan.charts)[:64],
                         "threshold": float(lim.limits.bank[0]), "target_arl": target,
                         "details": dict(lim.details) | {"limits": lim.limits.to_json()},
-                        "created_utc": to_utc_naive(self.now)})
+                        "created_utc": to_utc_naive(self.stamp)})
         self._limits[key] = lim
         return lim
 
