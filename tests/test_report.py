@@ -665,3 +665,14 @@ def test_acknowledgement_note_and_person_are_shown_escaped(tmp_path):
     html = render_html(gather(engine, config, ids[-1], now=NOW))
     assert "acknowledged by ana: \u201cmould &lt;b&gt;swapped&lt;/b&gt; &amp; checked\u201d" in html
     engine.dispose()
+
+
+def test_glance_has_a_sequential_column_when_the_charts_ran(jump_data, jump_html):
+    seq = [f for f in jump_data.findings if f.kind == "sequential"]
+    if not seq:
+        pytest.skip("this build stores no sequential findings")
+    assert "<th>sequential charts</th>" in jump_html
+    assert re.search(r"\d+% of limit|\d+\.\d\u00d7 limit", jump_html)
+    no_seq = dataclasses.replace(jump_data, findings=tuple(
+        f for f in jump_data.findings if f.kind != "sequential"))
+    assert "<th>sequential charts</th>" not in render_html(no_seq)

@@ -41,6 +41,7 @@ KIND_MIX = "baseline"
 KIND_RATE = "rate"
 KIND_BETWEEN = "between-lines"
 KIND_VS_REST = "line-vs-rest"
+KIND_SEQUENTIAL = "sequential"
 HISTORY_KINDS = (KIND_MIX, KIND_RATE)
 ACTIVE_STATES = ("open", "acknowledged")
 

@@ -27,6 +27,7 @@ from qcfit.report.data import (
     KIND_BETWEEN,
     KIND_MIX,
     KIND_RATE,
+    KIND_SEQUENTIAL,
     TOO_LITTLE,
     WATCH,
     AlarmItem,
@@ -322,11 +323,23 @@ def _figure(f: FindingView | None, words) -> str:
     return words(f) if math.isfinite(f.effect_size) else ""
 
 
+def _of_limit(f: FindingView) -> str:
+    """A sequential finding's largest statistic / limit, in words."""
+    r = f.effect_size
+    return f"{100 * r:.0f}% of limit" if r < 1 else f"{r:.1f}\u00d7 limit"
+
+
+def _units_words(units: float) -> str:
+    return f"{units:,.0f} units inspected" if math.isfinite(units) else "units inspected unknown"
+
+
 def _glance(data: ReportData) -> str:
+    charted = any(f.kind == KIND_SEQUENTIAL for f in data.findings)
     rows = []
     for i, (code, name) in enumerate(data.lines):
         mix = data.finding(KIND_MIX, code)
         rate = data.finding(KIND_RATE, code)
+        seq = data.finding(KIND_SEQUENTIAL, code)
         n = sum(data.counts[i]) if i < len(data.counts) else 0
         units = data.units[i] if i < len(data.units) else math.nan
         pct = f"{100 * n / units:.2f}%" if math.isfinite(units) and units > 0 else "\u2013"
@@ -334,16 +347,16 @@ def _glance(data: ReportData) -> str:
         if rate is not None and math.isfinite(rate.baseline_rate):
             base = f'<span class="muted"> / {100 * rate.baseline_rate:.2f}%</span>'
         mix_fig = _figure(mix, lambda f: f"w {f.effect_size:.2f}, p {fmt_p(f.adjusted_pvalue)}")
-        rate_fig = _figure(rate, lambda f: f"{f.effect_size:.2f}\u00d7 baseline, "
-                                           f"p {fmt_p(f.adjusted_pvalue)}")
+        rate_fig = _figure(rate, lambda f: f"{f.effect_size:.2f}\u00d7, p {fmt_p(f.adjusted_pvalue)}")
         rows.append(
             f'<tr><td class="ln"><b>{e(code)}</b> <span class="muted">{e(name)}</span></td>'
             f'<td class="num">{n:,}</td>'
-            f'<td class="num">{"" if not math.isfinite(units) else f"{units:,.0f}"}</td>'
-            f'<td class="num">{e(pct)}{base}</td>'
-            f"{_verdict_cell(mix, mix_fig)}{_verdict_cell(rate, rate_fig)}</tr>")
-    head = ("<tr><th>line</th><th>defects</th><th>units</th><th>rate / baseline</th>"
-            "<th>mix vs baseline</th><th>defect rate vs baseline</th></tr>")
+            f'<td class="num" title="{e(_units_words(units))}">{e(pct)}{base}</td>'
+            f"{_verdict_cell(mix, mix_fig)}{_verdict_cell(rate, rate_fig)}"
+            + (_verdict_cell(seq, _figure(seq, _of_limit)) if charted else "") + "</tr>")
+    head = ("<tr><th>line</th><th>defects</th><th>rate / baseline</th>"
+            "<th>mix vs baseline</th><th>rate vs baseline</th>"
+            + ("<th>sequential charts</th>" if charted else "") + "</tr>")
     between = data.finding(KIND_BETWEEN, None)
     foot = ""
     if between is not None:

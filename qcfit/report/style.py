@@ -60,12 +60,10 @@ th { text-align: left; font-weight: 600; font-size: 10.5px; text-transform: uppe
      padding: 3px 6px 3px 0; }
 td { border-bottom: 1px solid var(--rule); padding: 4px 6px 4px 0; vertical-align: top; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; padding-right: 12px; }
-th:nth-child(2), th:nth-child(3), th:nth-child(4) { }
-table.glance th:nth-child(2), table.glance th:nth-child(3), table.glance th:nth-child(4)
-  { text-align: right; padding-right: 12px; }
-td.ln { max-width: 250px; white-space: nowrap; overflow: hidden; text-overflow: ellipsis; }
-table.glance td { white-space: nowrap; }
-.fig { color: var(--muted); font-size: 11.5px; font-variant-numeric: tabular-nums; }
+table.glance th:nth-child(2), table.glance th:nth-child(3) { text-align: right; padding-right: 12px; }
+td.ln { max-width: 210px; white-space: nowrap; overflow: hidden; text-overflow: ellipsis; }
+table.glance td.num { white-space: nowrap; }
+.fig { white-space: nowrap; color: var(--muted); font-size: 11.5px; font-variant-numeric: tabular-nums; }
 table.alarms td.what { width: 44%; }
 .moves { color: var(--muted); font-size: 11.5px; margin-top: 2px; }
 tr.r-cleared td { color: var(--muted); }
@@ -118,7 +116,8 @@ code.hash { font: 10.5px/1.3 "DejaVu Sans Mono", Consolas, monospace; word-break
   .headline .verdict { font-size: 11pt; }
   .headline .first { font-size: 9pt; }
   .verdict .badge { font-size: 9pt; line-height: 14pt; }
-  .badge { font-size: 7pt; line-height: 11pt; }
+  .badge { font-size: 6.5pt; line-height: 10pt; padding: 0 4px; }
+  table.glance td.ln .muted { display: none; }  /* names: in the map and the headline */
   table { font-size: 7.5pt; }
   th { font-size: 6.5pt; }
   td { padding: 2px 5px 2px 0; }
