@@ -19,14 +19,17 @@ Rules (documented in the README):
   CUSUMs (ARL0 2 c x target each): the alarm rates add at most (union bound; common practice,
   no source), so the line's ARL0 is at least about the target.
 * **n profile**: the median defects per shift of the line over the last 30 shifts in the store
-  up to this one, rounded to a grid of 4 steps per doubling (about +-9 %), and simulated as
+  up to this one, rounded to a grid of 2 steps per doubling (about +-19 %), and simulated as
   Poisson with that mean (20 quantiles). The limits change only when the line's typical
   volume moves by a grid step.
 * **Calibration**: Monte Carlo (pair) and Brook-Evans (concerns), seeded from ``[thresholds]
   seed`` and the cache key, cached in ``chart_calibration`` by a hash of everything the limits
   depend on (baseline shares, chart settings, n profile, target, seed, paths). If a
   calibration cannot be made, the conservative limits (ln(D ARL0) for the bank, ln(ARL0) for
-  a CUSUM, MEWMA off) are used and the finding says so.
+  a CUSUM, MEWMA off) are used and the finding says so. One evaluation run spends at most
+  ``CALIBRATION_BUDGET_S`` (10 CPU seconds) calibrating; lines beyond it get the conservative
+  limits for that run and are calibrated by a following run (50 lines with two concerns take
+  about 27 CPU seconds, so a cold service start fills the cache over three runs).
 * **Resets**: the charts start afresh at a line's first shift, when its baseline version or
   chart settings change, and after an acknowledgement with the cause removed.
 * **Order**: the chart rows after shift s are computed from the rows of the latest shift before
@@ -83,10 +86,13 @@ CHART_MEWMA = "MEWMA"
 CHART_BANK = "bank"
 CUSUM_PREFIX = "CUSUM "
 N_WINDOW = 30  # shifts whose median total sets the n profile
-N_GRID = 4  # grid steps per doubling of the typical total
+N_GRID = 2  # grid steps per doubling of the typical total (about +-19 %)
 PROFILE_POINTS = 20
 CALIBRATION_VERSION = 1
 CHAIN_LOOKBACK = 5000
+#: CPU seconds one evaluation run may spend calibrating; later lines get conservative limits
+#: until a following run has filled the cache (the service start budget of issue 8)
+CALIBRATION_BUDGET_S = 10.0
 CUSUM_CAP = 1.5  # CUSUM values carried on are held at most this multiple of their limit
 CALIBRATED = "calibrated"
 CONSERVATIVE = "conservative"
@@ -480,11 +486,13 @@ class ChartStage:
     """
 
     def __init__(self, engine: Any, config: Any, *, now: dt.datetime,
-                 paths: int = DEFAULT_PATHS) -> None:
+                 paths: int = DEFAULT_PATHS,
+                 budget_s: float | None = CALIBRATION_BUDGET_S) -> None:
         self.engine = engine
         self.config = config
         self.stamp = now  # when calibrations made in this run are recorded
         self.paths = paths
+        self.budget_s = budget_s
         self._limits: dict[str, LineLimits] = {}
         self._done: dict[str, list[_Done]] = {}  # line -> computed this run, in start order
         self._pending: dict[str, dict[str, _Done]] = {}  # shift id -> line -> rows to write
@@ -590,15 +598,18 @@ class ChartStage:
             det = row["details"] or {}
             lim = LineLimits(key, SequentialLimits.from_json(det["limits"]), CALIBRATED, level,
                              det)
+        elif self.budget_s is not None and self.calibration_seconds >= self.budget_s:
+            lim = fallback_limits(plan, level, target, key, "calibration pending (this run's "
+                                  f"{self.budget_s:g} s calibration budget is spent)")
         else:
-            t0 = time.perf_counter()
+            t0 = time.process_time()
             try:
                 lim = dataclasses.replace(calibrate_plan(
                     plan, level, target, calibration_seed(base, key), self.paths), key=key)
             except InvalidArgumentError as exc:
                 log.warning("line %s: no calibration (%s); conservative limits", plan.line, exc)
                 lim = fallback_limits(plan, level, target, key, str(exc))
-            self.calibration_seconds += time.perf_counter() - t0
+            self.calibration_seconds += time.process_time() - t0
             self.calibrations += 1
             if lim.kind == CALIBRATED:
                 with write_tx(self.engine) as conn:
@@ -658,8 +669,9 @@ class ChartStage:
         return sorted(out.values(), key=lambda s: s.start)
 
 
-def stage_for(engine: Any, config: Any, *, now: dt.datetime) -> ChartStage | None:
+def stage_for(engine: Any, config: Any, *, now: dt.datetime,
+              budget_s: float | None = CALIBRATION_BUDGET_S) -> ChartStage | None:
     """The sequential stage of an evaluation run, or None when ``[sequential]`` is off."""
     if not config.sequential.enabled:
         return None
-    return ChartStage(engine, config, now=now)
+    return ChartStage(engine, config, now=now, budget_s=budget_s)

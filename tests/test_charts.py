@@ -78,12 +78,13 @@ def test_zero_share_categories_are_left_out_and_impossible_concerns_skipped():
 
 
 def test_n_level_is_a_median_on_a_grid_and_the_profile_is_poisson():
-    assert charts.n_level([200] * 30) == 215  # 2 ** (round(4 log2 200) / 4) = 2 ** 7.75
-    assert charts.n_level([190, 205, 0, 2000, 200]) == 215
+    assert charts.n_level([200] * 30) == 181  # 2 ** (round(2 log2 200) / 2) = 2 ** 7.5
+    assert charts.n_level([190, 205, 0, 2000, 200]) == 181
+    assert charts.n_level([250] * 30) == 256
     assert charts.n_level([0, 0, 1]) == 1
-    prof = charts.n_profile(215)
-    assert prof.size == 20 and abs(prof.mean() / 215 - 1) < 0.02
-    assert abs(prof.std() / np.sqrt(215) - 1) < 0.15  # Poisson: sd = sqrt(mean)
+    prof = charts.n_profile(181)
+    assert prof.size == 20 and abs(prof.mean() / 181 - 1) < 0.02
+    assert abs(prof.std() / np.sqrt(181) - 1) < 0.15  # Poisson: sd = sqrt(mean)
     assert charts.split_targets(370, 0) == (370.0, float("inf"))
     assert charts.split_targets(370, 2) == (740.0, 1480.0)
 
@@ -368,4 +369,19 @@ def test_sequential_off_writes_no_chart_rows(tmp_path, plant_config_text):
     load(engine, work, drift_counts(start=99))
     out = service.evaluate_shifts(engine, config, work, now=after(work))
     assert all(s.ok for s in out) and chart_rows(engine) == []
+    engine.dispose()
+
+
+def test_a_spent_calibration_budget_gives_conservative_limits_until_a_later_run(
+        tmp_path, plant_config_text):
+    _, config, engine, cal = make_plant(tmp_path, plant_config_text, FAST)
+    stage = charts.ChartStage(engine, config, now=T0, budget_s=0.0)
+    plan = charts.plan_line("L1", ref(), config.sequential)
+    lim = stage.limits(plan, 256)
+    assert lim.kind == charts.CONSERVATIVE and stage.calibrations == 0
+    assert np.isinf(lim.limits.ewma[0])  # MEWMA off: no bound covers it
+    # ln(D ARL0) for the bank of D = 30 pairs at the pair's ARL0 of 2 x 100 (one concern)
+    assert lim.limits.bank[0] == pytest.approx(np.log(30 * 200.0))
+    later = charts.ChartStage(engine, config, now=T0)
+    assert later.limits(plan, 256).kind == charts.CALIBRATED and later.calibrations == 1
     engine.dispose()
