@@ -446,6 +446,10 @@ def test_write_atomic_replaces_whole_and_leaves_no_temp(tmp_path):
     assert [p.name for p in tmp_path.iterdir()] == ["r.html"]
     with pytest.raises(InvalidArgumentError, match="does not exist"):
         write_atomic(tmp_path / "missing" / "r.html", "x")
+    (tmp_path / "taken").mkdir()
+    with pytest.raises(InvalidArgumentError, match="cannot write .*taken"):
+        write_atomic(tmp_path / "taken", "x")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["r.html", "taken"]  # no temp left
 
 
 def test_prune_keeps_the_newest_by_shift_order_not_by_name(tmp_path):

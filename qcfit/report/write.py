@@ -57,16 +57,23 @@ def write_atomic(path: str | Path, text: str) -> Path:
     folder = target.parent
     if not folder.is_dir():
         raise InvalidArgumentError("--out", f"folder {folder} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=folder)
+    except OSError as exc:
+        raise InvalidArgumentError("--out", f"cannot write in {folder}: {exc.strerror or exc}"
+                                   ) from exc
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(text.encode("utf-8"))
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, target)
-    except BaseException:
+    except BaseException as exc:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
+        if isinstance(exc, OSError):
+            raise InvalidArgumentError("--out", f"cannot write {target}: "
+                                       f"{exc.strerror or exc}") from exc
         raise
     _sync_folder(folder)
     return target
