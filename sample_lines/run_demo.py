@@ -3,10 +3,16 @@
 Runs the same commands a plant engineer would type (see the README's walk-through), in-process:
 
     qcfit --config sample_lines/plant.toml --store sqlite:///demo-store/plant.sqlite init
-    qcfit ... load counts sample_lines/data/shift_counts.csv
+    qcfit ... load events sample_lines/data/defect_events.csv
+    qcfit ... load units sample_lines/data/units_inspected.csv
     qcfit ... evaluate --since 2026-09-07
     qcfit ... alarms
     qcfit ... report --shift 2026-10-07_B --out demo-store/report-2026-10-07_B.html
+
+The demo takes the raw-event path: counts per shift x line x category are derived from the
+logged rejects, and the units inspected (which events cannot give) come from their own file.
+``data/shift_counts.csv`` holds the same numbers in the per-shift counts format; loading it
+instead of the two files gives the same evaluation.
 
 The store lives in ``demo-store/`` (not tracked); each run starts it afresh.
 """
@@ -23,6 +29,7 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 STORE_DIR = ROOT / "demo-store"
 CONFIG = HERE / "plant.toml"
+DATA = HERE / "data"
 STORE_URL = f"sqlite:///{STORE_DIR / 'plant.sqlite'}"
 FIRST_DAY = "2026-09-07"
 JUMP_SHIFT = "2026-10-07_B"
@@ -42,7 +49,8 @@ def main() -> None:
         shutil.rmtree(STORE_DIR)
     STORE_DIR.mkdir()
     step("Create the store", "init")
-    step("Load the demo plant's shift counts", "load", "counts", str(HERE / "data" / "shift_counts.csv"))
+    step("Load the logged rejects (raw defect events)", "load", "events", str(DATA / "defect_events.csv"))
+    step("Load the units inspected per shift and line", "load", "units", str(DATA / "units_inspected.csv"))
     step("Evaluate every ended shift", "evaluate", "--since", FIRST_DAY, "--quiet")
     step("The alarm log a supervisor reviews", "alarms")
     if "qcfit.cli.report" in COMMAND_MODULES:
