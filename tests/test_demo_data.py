@@ -463,3 +463,53 @@ def test_generator_is_deterministic_in_process(tmp_path: Path) -> None:
     second = gen.generate(tmp_path / "two")
     for key in first:
         assert first[key].read_bytes() == second[key].read_bytes()
+
+
+# ------------------------------------------------------------------------- the two load paths
+
+
+def _store(tmp_path: Path, config: Config, name: str):
+    from qcfit.store.engine import make_engine
+    from qcfit.store.migrate import init_store
+
+    engine = make_engine(f"sqlite:///{tmp_path / name}")
+    init_store(engine, config, os_user="tester", now=LOAD_TIME)
+    return engine
+
+
+def _tables(engine, config: Config) -> dict[str, tuple[list, list]]:
+    from qcfit.store.defects import shift_table
+    from qcfit.store.engine import read_tx
+    from qcfit.store.shifts import shift_row
+
+    lines, cats = list(config.lines), list(config.categories)
+    ids = _shift_windows(config, gen.FIRST_DATE, gen.LAST_DATE)["shift"]
+    out = {}
+    with read_tx(engine) as conn:
+        for shift_id in ids:
+            counts, units = shift_table(conn, shift_row(conn, shift_id).row_id, lines, cats)
+            out[shift_id] = (counts.tolist(), units.tolist())
+    return out
+
+
+def test_events_plus_units_give_the_store_what_the_counts_file_gives(
+    tmp_path: Path, config: Config
+) -> None:
+    """The demo's raw-event path (events, then units) and the counts-file path leave the same
+    count table and units for every shift, which is all the evaluation reads."""
+    from qcfit.ingest import load_counts_file, load_events_file, load_units_file
+
+    by_counts = _store(tmp_path, config, "counts.sqlite")
+    by_events = _store(tmp_path, config, "events.sqlite")
+    try:
+        load_counts_file(by_counts, config, DATA / "shift_counts.csv", now=LOAD_TIME)
+        load_events_file(by_events, config, DATA / "defect_events.csv", now=LOAD_TIME)
+        report = load_units_file(by_events, config, DATA / "units_inspected.csv", now=LOAD_TIME)
+        assert (report.rows_accepted, report.units_written, report.corrections) == (990, 990, 0)
+        expected = _tables(by_counts, config)
+        got = _tables(by_events, config)
+        assert len(got) == 198 and got == expected
+        assert not any(np.isnan(units).any() for _, units in got.values())
+    finally:
+        by_counts.dispose()
+        by_events.dispose()

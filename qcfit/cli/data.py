@@ -71,7 +71,8 @@ _rejects = click.option(
 
 @main.group("load")
 def load_group() -> None:
-    """Load defect data from a CSV file into the store (one transaction per file)."""
+    """Load defect data or units inspected from a CSV file into the store (one transaction
+    per file)."""
 
 
 @load_group.command("events")
