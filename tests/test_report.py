@@ -680,3 +680,22 @@ def test_glance_has_a_sequential_column_when_the_charts_ran(jump_data, jump_html
     no_seq = dataclasses.replace(jump_data, findings=tuple(
         f for f in jump_data.findings if f.kind != "sequential"))
     assert "<th>sequential charts</th>" not in render_html(no_seq)
+
+
+def test_an_open_service_fault_without_a_shift_is_listed(tmp_path):
+    from qcfit.store.alarms import insert_alarm
+
+    config, engine, ids = build_plant(tmp_path, shifts=6, jump_from=99)
+    naive = NOW.replace(tzinfo=None)
+    with write_tx(engine) as conn:
+        insert_alarm(conn, {
+            "kind": "service-fault", "line": None, "line_key": "", "first_shift_id": None,
+            "last_shift_id": None, "shift_key": 0, "baseline_version_id": None,
+            "baseline_key": 0, "severity": "alarm", "state": "open",
+            "summary": "store unreachable: <disk>", "opened_utc": naive, "updated_utc": naive})
+    d = gather(engine, config, ids[-1], now=NOW)
+    (fault,) = [a for a in d.alarms if a.kind == "service-fault"]
+    assert fault.role == "earlier" and fault.first_shift is None
+    html = render_html(d)
+    assert "<td><b>qcfit service</b></td>" in html and "store unreachable: &lt;disk&gt;" in html
+    engine.dispose()

@@ -15,7 +15,7 @@ import datetime as dt
 from collections.abc import Iterable, Sequence
 from typing import Any
 
-from sqlalchemy import and_, select
+from sqlalchemy import and_, or_, select
 from sqlalchemy.engine import Connection
 
 from qcfit.store.schema import (
@@ -198,10 +198,10 @@ _last = shift.alias("last_shift")
 def alarms_of_shift(conn: Connection, shift_row_id: int, start_utc: dt.datetime
                     ) -> list[dict[str, Any]]:
     """Alarms the report of one shift lists: those with an event recorded for this shift
-    (opened, updated, cleared by it) and those opened by an earlier shift that are still open
-    or acknowledged now. Each row has the alarm's columns plus ``first_shift_date``,
-    ``first_shift_name``, ``last_shift_date``, ``last_shift_name``, ``baseline_name`` and
-    ``events`` (``(action, note)`` of the events recorded for this shift, oldest first: the
+    (opened, updated, cleared by it) and those opened by an earlier shift (or by no shift: a
+    service fault) that are still open or acknowledged now. Each row has the alarm's columns
+    plus ``first_shift_date``, ``first_shift_name``, ``last_shift_date``, ``last_shift_name``,
+    ``baseline_name`` and ``events`` (``(action, note)`` of the events recorded for this shift, oldest first: the
     note of an open or update event is what the alarm said about this shift)."""
     touched: dict[int, list[tuple[str, str | None]]] = {}
     for alarm_id, action, note in conn.execute(
@@ -210,8 +210,10 @@ def alarms_of_shift(conn: Connection, shift_row_id: int, start_utc: dt.datetime
     ):
         touched.setdefault(int(alarm_id), []).append((str(action), note))
     still = conn.execute(
-        select(alarm.c.id).select_from(alarm.join(_first, _first.c.id == alarm.c.first_shift_id))
-        .where(alarm.c.state.in_(("open", "acknowledged")), _first.c.start_utc <= start_utc)
+        select(alarm.c.id)
+        .select_from(alarm.outerjoin(_first, _first.c.id == alarm.c.first_shift_id))
+        .where(alarm.c.state.in_(("open", "acknowledged")),
+               or_(_first.c.start_utc <= start_utc, alarm.c.first_shift_id.is_(None)))
     ).scalars().all()
     ids = sorted(set(touched) | {int(i) for i in still})
     if not ids:
