@@ -76,7 +76,7 @@ load = Table(
     "load",
     metadata,
     Column("id", Integer, primary_key=True, autoincrement=True),
-    Column("kind", String(16), nullable=False),  # events | counts | pull
+    Column("kind", String(16), nullable=False),  # events | counts | units | pull
     Column("source", Text, nullable=False),  # file path or source name
     Column("content_hash", String(64), nullable=False),  # sha256 of the bytes loaded
     Column("loaded_utc", DateTime, nullable=False),
