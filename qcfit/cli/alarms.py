@@ -150,8 +150,10 @@ def story_lines(story: Any, tz: dt.tzinfo | None, names: Mapping[str, str]) -> l
                       and d.get("dof") is not None else "")
                    + (f", n {d['n']}" if d.get("n") is not None else "")
                    + (f", power {d['power']:.2f}" if d.get("power") is not None else ""))
-    if d.get("method"):
+    if d.get("method") and a.kind != "sequential":
         out.append(f"  p-value by {d['method']}" + (f"; {d['reason']}" if d.get("reason") else ""))
+    if a.kind == "sequential":
+        out += chart_lines(d.get("extra") or {}, names)
     if a.baseline_version_id is not None:
         eff = story.baseline_effective.isoformat() if story.baseline_effective else "?"
         out.append(f"  Baseline: {a.baseline_name} (version {a.baseline_version_id}, "
@@ -169,6 +171,24 @@ def story_lines(story: Any, tz: dt.tzinfo | None, names: Mapping[str, str]) -> l
         for clause in (e.note or "").split("; ") if e.note else []:
             out += textwrap.wrap(clause, width=WIDTH, initial_indent=" " * INDENT,
                                  subsequent_indent=" " * (INDENT + 2))
+    return out
+
+
+def chart_lines(extra: Mapping[str, Any], names: Mapping[str, str]) -> list[str]:
+    """A sequential alarm's charts at their limits (latest shift), with their drivers."""
+    out = []
+    for sig in extra.get("signals") or []:
+        start = sig.get("start_shift") or "-"
+        out.append(f"  {sig['chart']}: {sig['statistic']:.2f} >= limit {sig['limit']:.2f}, "
+                   f"change began {start} ({sig['shifts_back']} shift(s) back)")
+        for c in sig.get("drivers") or []:
+            ratio = c["share"] / c["reference_share"] if c.get("reference_share") else 0.0
+            out.append(f"      {names.get(c['code'], c['code'])} {c['direction']} "
+                       f"{100 * c['reference_share']:.1f}% -> {100 * c['share']:.1f}% "
+                       f"(x{ratio:.2f}, z {c['adjusted_residual']:+.1f})")
+    if extra.get("limits_kind"):
+        out.append(f"  Limits {extra['limits_kind']} for about {extra.get('n_level')} "
+                   "defects a shift")
     return out
 
 
