@@ -385,3 +385,16 @@ def test_a_spent_calibration_budget_gives_conservative_limits_until_a_later_run(
     later = charts.ChartStage(engine, config, now=T0)
     assert later.limits(plan, 256).kind == charts.CALIBRATED and later.calibrations == 1
     engine.dispose()
+
+
+def test_the_alarm_story_lists_the_charts_and_where_the_change_began(drifted):
+    path, _, engine, _, work = drifted
+    a = [x for x in seq_alarms(engine) if x["line"] == "L3"][0]
+    url = f"sqlite:///{path.parent / 'store.sqlite'}"
+    res = CliRunner().invoke(main, ["--config", str(path), "--store", url, "alarm", str(a["id"])])
+    assert res.exit_code == 0, res.output
+    lines = res.output.splitlines()
+    assert lines[0] == f"Alarm {a['id']}: sequential, line L3, severity alarm, state open"
+    began = [ln for ln in lines if ">= limit" in ln and "change began 2026-01-" in ln]
+    assert began and any("flash up 15.0% ->" in ln for ln in lines)
+    assert "p-value by" not in res.output  # a chart has no p-value
