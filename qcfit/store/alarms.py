@@ -135,11 +135,3 @@ def events_of(conn: Connection, alarm_id: int) -> list[dict[str, Any]]:
         .order_by(alarm_event.c.id)
     ).mappings()
     return [dict(r) for r in rows]
-
-
-def shift_starts(conn: Connection, ids: Sequence[int]) -> dict[int, dt.datetime]:
-    """Shift row id -> start (naive UTC)."""
-    if not ids:
-        return {}
-    rows = conn.execute(select(shift.c.id, shift.c.start_utc).where(shift.c.id.in_(list(ids))))
-    return {int(r[0]): r[1] for r in rows}
