@@ -39,13 +39,15 @@ import logging
 import os
 import signal
 import socket
+import subprocess
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from apscheduler.executors.pool import ThreadPoolExecutor
 from apscheduler.jobstores.memory import MemoryJobStore
@@ -53,7 +55,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 from apscheduler.triggers.base import BaseTrigger
 from apscheduler.triggers.interval import IntervalTrigger
 
-from qcfit import alarmlog, policy, service, servicelog
+from qcfit import servicelog
 from qcfit.calendar import ShiftCalendar
 from qcfit.config import Config, load_config, resolve_path, store_url_for, timezone_source
 from qcfit.errors import AlreadyRunningError, ConfigError, QcfitError, StoreError
@@ -69,6 +71,9 @@ from qcfit.store.lock import StoreLock, store_lock
 from qcfit.store.migrate import check_schema
 from qcfit.store.shifts import ensure_shifts
 
+if TYPE_CHECKING:
+    from qcfit import service
+
 __all__ = [
     "JOB_DEFAULTS",
     "Options",
@@ -79,12 +84,14 @@ __all__ = [
     "utc_now",
 ]
 
-log = logging.getLogger(__name__)
+log = logging.getLogger("qcfit.scheduler")  # also when run as __main__
 
 JOB_DEFAULTS = {"misfire_grace_time": None, "coalesce": True, "max_instances": 1}
 EXECUTOR_THREADS = 3  # start/wake/tick share one catch-up lock; beat runs beside them
 FAULT_ANCHOR_TRIES = 10
-_ACTION_WORDS = {policy.RAISE: "opened", policy.UPDATE: "updated", policy.AUTO_CLEAR: "cleared"}
+_ACTION_WORDS = {"open": "opened", "update": "updated", "auto-clear": "cleared"}  # policy's
+SYSTEM_USER = "qcfit"  # who the alarm log records for the service's own changes
+MSG = "@qcfit "  # prefix of a message line from an evaluation child to the service
 
 
 def utc_now() -> dt.datetime:
@@ -163,6 +170,8 @@ def record_service_fault(engine: Any, config: Config, reason: str, *, now: dt.da
     fault alarm is updated instead of opening a second one, like a failed evaluation does.
     Returns (alarm id, newly opened), or None when the store could not be written.
     """
+    from qcfit import alarmlog, policy
+
     cal = ShiftCalendar.from_config(config)
     summary = f"{source}: {reason}"[:500]
     details = {"error": reason, "source": source}
@@ -190,6 +199,7 @@ def record_service_fault(engine: Any, config: Config, reason: str, *, now: dt.da
 
 def _raise_fault(conn: Any, cal: ShiftCalendar, anchor: Any, summary: str,
                  details: dict[str, str], now: dt.datetime) -> tuple[int, bool]:
+    from qcfit import alarmlog, policy
     from qcfit.store import alarms as alarm_rows
 
     for _ in range(FAULT_ANCHOR_TRIES):
@@ -224,6 +234,10 @@ class Options:
     standby_poll_s: float = 5.0
     notify_backoff_s: float = 1.0
     stop_timeout_s: float = 10.0  # notifications still queued at shutdown
+    # Evaluate in a child process, one per catch-up that has work: the long-lived service
+    # then never imports the statistics stack (scipy, pandas), so it idles at about half
+    # the memory. A catch-up with nothing due starts no child.
+    isolate: bool = False
 
     @property
     def stale_s(self) -> float:
@@ -268,6 +282,8 @@ class Service:
         self._first_pull = True
         self._host = socket.gethostname()
         self._announced: int | None = None  # alarm events up to this id are announced
+        self._child_mode = False  # True in an evaluation child (see _child_main)
+        self._child: subprocess.Popen[str] | None = None
         self.beats = 0  # heartbeat rows written
         self.evaluated = 0  # shifts evaluated by this process
 
@@ -283,9 +299,18 @@ class Service:
     def catch_up(self, now: dt.datetime | None = None) -> list[service.EvaluationSummary]:
         """ONE catch-up: pull (when ``[source]``), then evaluate every due shift.
 
-        Never overlaps another catch-up; stops between shifts when the service stops.
-        Returns the evaluation summaries (empty when nothing was due or the pull failed).
+        Never overlaps another catch-up; stops between write transactions when the service
+        stops. Returns the evaluation summaries (empty when nothing was due or the pull
+        failed). With :attr:`Options.isolate` the work runs in a child process (see
+        :meth:`_catch_up_in_child`) and the summaries stay there (empty list here).
         """
+        if self.options.isolate:
+            return self._catch_up_in_child(now)
+        return self._catch_up_here(now)
+
+    def _catch_up_here(self, now: dt.datetime | None = None) -> list[service.EvaluationSummary]:
+        from qcfit import service
+
         with self._catchup:
             now = self.clock() if now is None else now
             config = self.config
@@ -307,15 +332,97 @@ class Service:
                 return done
             finally:
                 self._status = "idle"
+                if not self._child_mode:
+                    self.beat()
+
+    def due_count(self, now: dt.datetime) -> int:
+        """How many ended shifts lack a current ``ok`` evaluation (what
+        ``service.due_shifts`` returns), without importing the statistics stack."""
+        from qcfit.store import evaluations as esql
+        from qcfit.store.engine import from_utc_naive, read_tx
+
+        with read_tx(self.engine) as conn:
+            first = esql.earliest_shift_start(conn)
+            if first is None:
+                return 0
+            ended = ShiftCalendar.from_config(self.config).ended_by(from_utc_naive(first), now)
+            if not ended:
+                return 0
+            status = esql.current_status_between(
+                conn, to_utc_naive(ended[0].start),
+                to_utc_naive(ended[-1].start) + dt.timedelta(seconds=1))
+        return sum(1 for s in ended if status.get((s.date, s.name)) != "ok")
+
+    def _catch_up_in_child(self, now: dt.datetime | None = None) -> list[Any]:
+        """The catch-up in a child process (``python -m qcfit.scheduler catch-up``): it
+        pulls, evaluates, logs each alarm change and reports back on stdout; its log lines
+        are re-logged here, so this process stays the only writer of the log file, and
+        notifications are sent from here. The child dies with this process (Linux)."""
+        with self._catchup:
+            now = self.clock() if now is None else now
+            self._last_wake = now
+            if self._announced is None:
+                self._announced = last_alarm_event(self.engine)
+            try:
+                if self.due_count(now) == 0:
+                    return []
+            except QcfitError as exc:
+                log.error("cannot tell which shifts are due: %s", exc)
+                return []
+            self._status = "catching up"
+            try:
+                self._run_child(now)
+            finally:
+                self._status = "idle"
                 self.beat()
+            return []
+
+    def _run_child(self, now: dt.datetime) -> None:
+        argv = [sys.executable, "-m", "qcfit.scheduler", "catch-up", "--config",
+                str(self.config_path), "--now", now.isoformat(), "--after-event",
+                str(self._announced or 0)]
+        if self._store_override:
+            argv += ["--store", self._store_override]
+        child = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+                                 stderr=subprocess.STDOUT, text=True, encoding="utf-8",
+                                 errors="replace")
+        self._child = child
+        if self.stop.is_set():
+            child.terminate()
+        assert child.stdout is not None
+        for line in child.stdout:
+            self._from_child(line.rstrip("\n"))
+        code = child.wait()
+        self._child = None
+        if code != 0:
+            log.error("evaluation process exited with code %s", code)
+
+    def _from_child(self, line: str) -> None:
+        import json
+
+        if not line.startswith(MSG):
+            _relog(line)
+            return
+        msg = json.loads(line[len(MSG):])
+        self._beat_mono = time.monotonic()  # the catch-up is alive
+        if "notify" in msg:
+            self.notifier.submit(msg["notify"])
+        if "announced" in msg:
+            self._announced = max(self._announced or 0, int(msg["announced"]))
+        if "evaluated" in msg:
+            self.evaluated += int(msg["evaluated"])
 
     def _progress(self, done: list[service.EvaluationSummary]
                   ) -> Callable[[int, int, service.EvaluationSummary], None]:
+        from qcfit import service
+
         chunk = max(1, int(getattr(service, "CHUNK", 1)))
 
         def progress(i: int, n: int, summary: service.EvaluationSummary) -> None:
             done.append(summary)
             self._beat_mono = time.monotonic()  # a long catch-up is alive
+            if self._child_mode:
+                _message({"progress": i, "of": n})
             # stop only after a whole write transaction (a chunk of shifts) has committed
             if self.stop.is_set() and i < n and i % chunk == 0:
                 raise _Stopping()
@@ -365,8 +472,7 @@ class Service:
             if self._announced is None:
                 self._announced = last_alarm_event(self.engine)
                 return 0
-            changes = alarm_changes_after(self.engine, self._announced,
-                                          by=alarmlog.SYSTEM_USER)
+            changes = alarm_changes_after(self.engine, self._announced, by=SYSTEM_USER)
         except QcfitError as exc:
             log.error("alarm changes not announced: %s", exc)
             return 0
@@ -376,6 +482,8 @@ class Service:
         return len(changes)
 
     def _announce(self, alarm_id: int, action: str, config: Config) -> None:
+        from qcfit import alarmlog
+
         try:
             view = alarmlog.get_alarm(self.engine, alarm_id)
         except QcfitError as exc:
@@ -383,7 +491,11 @@ class Service:
             return
         servicelog.log_alarm(action, view)
         if action == "opened":
-            self.notifier.submit(view.as_json(config.timezone))
+            alarm = view.as_json(config.timezone)
+            if self._child_mode:  # the service sends it (one notifier, one log writer)
+                _message({"notify": alarm})
+            else:
+                self.notifier.submit(alarm)
 
     def fault(self, source: str, reason: str, *, now: dt.datetime | None = None) -> None:
         """Record a service fault once per distinct reason per source (no alarm spam)."""
@@ -600,6 +712,9 @@ class Service:
 
     def shutdown(self) -> None:
         sd_notify("STOPPING=1")
+        child = self._child
+        if child is not None and child.poll() is None:
+            child.terminate()  # it stops after the write transaction in flight
         if self.scheduler is not None and self.scheduler.running:
             self.scheduler.shutdown(wait=True)  # the catch-up in flight ends between shifts
         self._status = "stopped"
@@ -670,4 +785,97 @@ def _os_user() -> str:
     try:
         return getpass.getuser()
     except (KeyError, OSError):
-        return service.DEFAULT_USER
+        return SYSTEM_USER
+
+
+def _message(payload: dict[str, Any]) -> None:
+    """A message line from an evaluation child to the service (stdout)."""
+    import json
+
+    sys.stdout.write(MSG + json.dumps(payload, default=str) + "\n")
+    sys.stdout.flush()
+
+
+CHILD_FORMAT = "%(levelname)s %(name)s: %(message)s"
+
+
+def _relog(line: str) -> None:
+    """Log a line of the evaluation child (``LEVEL name: message``) as if it were ours."""
+    level_name, _, rest = line.partition(" ")
+    name, sep, message = rest.partition(": ")
+    level = logging.getLevelName(level_name)
+    if not isinstance(level, int) or not sep:
+        logging.getLogger("qcfit.scheduler.child").info("%s", line)
+        return
+    logging.getLogger(name).log(level, "%s", message)
+
+
+def _die_with_parent() -> None:
+    """Linux: the kernel kills this process when its parent dies (even by kill -9), so an
+    evaluation child never outlives its service."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError):
+        log.debug("no PR_SET_PDEATHSIG here")
+
+
+def _child_main(args: Any) -> int:
+    """``python -m qcfit.scheduler catch-up``: one catch-up for the service that started it
+    (which holds the store lock), then report back."""
+    _die_with_parent()
+    if os.getppid() == 1:
+        return 1  # the service is already gone
+    logging.basicConfig(level=logging.INFO, format=CHILD_FORMAT, stream=sys.stdout, force=True)
+    svc = Service(args.config, store_url=args.store)
+    logging.getLogger().setLevel(svc.config.log.level)
+    svc._child_mode = True
+    svc._announced = args.after_event
+    for name in ("SIGTERM", "SIGINT"):
+        signal.signal(getattr(signal, name), lambda *_: svc.request_stop())
+    try:
+        done = svc.catch_up(dt.datetime.fromisoformat(args.now))
+    finally:
+        svc.engine.dispose()
+    _message({"evaluated": len(done), "failed": sum(1 for d in done if not d.ok),
+              "announced": svc._announced or 0})
+    return 0
+
+
+def _serve_main(args: Any) -> int:
+    """``python -m qcfit.scheduler serve``: the service without the CLI's imports (what
+    ``qcfit serve`` turns itself into on POSIX; same process id)."""
+    try:
+        svc = Service(args.config, store_url=args.store, options=Options(
+            standby=args.standby, beat_s=args.beat_seconds, standby_poll_s=args.poll_seconds,
+            loop_s=min(5.0, args.poll_seconds), isolate=True))
+        return svc.run()
+    except QcfitError as exc:
+        sys.stderr.write(f"Error: {exc}\n")
+        return exc.exit_code
+
+
+def main(argv: list[str] | None = None) -> int:
+    import argparse
+
+    parser = argparse.ArgumentParser(prog="python -m qcfit.scheduler")
+    sub = parser.add_subparsers(dest="command", required=True)
+    child = sub.add_parser("catch-up")
+    child.add_argument("--config", required=True)
+    child.add_argument("--store", default=None)
+    child.add_argument("--now", required=True)
+    child.add_argument("--after-event", type=int, default=0)
+    serve = sub.add_parser("serve")
+    serve.add_argument("--config", required=True)
+    serve.add_argument("--store", default=None)
+    serve.add_argument("--standby", action="store_true")
+    serve.add_argument("--beat-seconds", type=float, default=30.0)
+    serve.add_argument("--poll-seconds", type=float, default=5.0)
+    args = parser.parse_args(argv)
+    return _child_main(args) if args.command == "catch-up" else _serve_main(args)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

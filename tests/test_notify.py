@@ -8,7 +8,6 @@ import socket
 import sys
 import threading
 import time
-from pathlib import Path
 
 import pytest
 from aiosmtpd.controller import Controller

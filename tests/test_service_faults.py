@@ -264,7 +264,7 @@ def test_stop_signal_during_an_evaluation_exits_0_between_shifts(
     bl = Backlog(tmp_path, plant_text(plant_config_text), f"sqlite:///{tmp_path / 'p.sqlite'}",
                  days=3 * BACKLOG_DAYS)
     try:
-        pid = zygote.spawn(bl.argv("serve"), tmp_path / "serve.log")
+        pid = zygote.spawn(bl.argv("serve", "--in-process"), tmp_path / "serve.log")
         wait_until(lambda: bl.evaluated() >= 2)
         os.kill(pid, sig)
         assert zygote.wait(pid, 60) == ("exit", 0), (tmp_path / "serve.log").read_text()
@@ -277,6 +277,64 @@ def test_stop_signal_during_an_evaluation_exits_0_between_shifts(
         assert "catch-up ended after" in log and "qcfit service stopped" in log
         hb = read_heartbeat(bl.engine)
         assert hb.pid == pid and hb.status == "stopped"
+    finally:
+        bl.engine.dispose()
+
+
+def _children(pid: int) -> list[int]:
+    """Child processes of ``pid`` (of any of its threads)."""
+    out: list[int] = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            out += [int(p) for p in (task / "children").read_text().split()]
+        except OSError:
+            continue
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return False
+    return stat.rsplit(")", 1)[1].split()[0] != "Z"
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").exists(), reason="needs Linux /proc")
+def test_production_service_evaluates_in_a_child_that_stops_and_dies_with_it(
+        tmp_path, plant_config_text):
+    """``python -m qcfit serve`` as systemd starts it: the lean service process (same pid)
+    runs each catch-up in an evaluation child; SIGTERM stops both cleanly, and a service
+    killed by SIGKILL takes its child with it."""
+    bl = Backlog(tmp_path, plant_text(plant_config_text), f"sqlite:///{tmp_path / 'p.sqlite'}",
+                 days=3 * BACKLOG_DAYS)
+    log = tmp_path / "serve.log"
+    try:
+        with log.open("w") as out:
+            proc = subprocess.Popen([sys.executable, "-m", "qcfit", *bl.argv("serve")],
+                                    stdout=out, stderr=subprocess.STDOUT, cwd="/")
+        wait_until(lambda: len(_children(proc.pid)) == 1, timeout=120)
+        (child,) = _children(proc.pid)
+        wait_until(lambda: bl.evaluated() >= 1, timeout=120)
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(120) == 0, _text(log)[-3000:]
+        assert not _alive(child)
+        text = _text(log)
+        assert 1 <= bl.evaluated() < len(bl.shifts), text[-3000:]
+        assert "catch-up ended after" in text  # the child's own line, logged by the service
+        assert "evaluation process exited" not in text
+        bl.check_whole()
+        # again, now killed: the kernel ends the child too, and nothing is half-written
+        with log.open("w") as out:
+            proc = subprocess.Popen([sys.executable, "-m", "qcfit", *bl.argv("serve")],
+                                    stdout=out, stderr=subprocess.STDOUT, cwd="/")
+        wait_until(lambda: len(_children(proc.pid)) == 1, timeout=120)
+        (child,) = _children(proc.pid)
+        time.sleep(0.5)
+        proc.kill()
+        proc.wait(30)
+        wait_until(lambda: not _alive(child), timeout=10)
+        bl.check_whole()
     finally:
         bl.engine.dispose()
 
@@ -294,7 +352,7 @@ def test_kill_9_at_random_points_loses_and_duplicates_nothing(
     try:
         for i in range(20):
             before = bl.evaluated()
-            pid = zygote.spawn(bl.argv("serve"), tmp_path / f"serve-{i}.log")
+            pid = zygote.spawn(bl.argv("serve", "--in-process"), tmp_path / f"serve-{i}.log")
             if i % 4:  # anywhere: start-up, schema check, lock, scheduler, evaluation
                 time.sleep(rng.uniform(0.0, 1.0))
             else:  # inside the backlog: once it has committed something, a little later
@@ -307,7 +365,7 @@ def test_kill_9_at_random_points_loses_and_duplicates_nothing(
             assert bl.evaluated() < len(bl.shifts)  # every kill fell inside the backlog
         assert kills == 20 and progressed >= 4, (kills, progressed)
         # after the crashes, one catch-up finishes the backlog
-        pid = zygote.spawn(bl.argv("serve", "--once"), tmp_path / "once.log")
+        pid = zygote.spawn(bl.argv("serve", "--in-process", "--once"), tmp_path / "once.log")
         assert zygote.wait(pid, 120) == ("exit", 0), (tmp_path / "once.log").read_text()
         current = bl.current()
         assert len(current) == len(bl.shifts) and set(current.values()) == {1}
@@ -324,15 +382,17 @@ def test_second_instance_is_refused_and_standby_takes_over(
         zygote, tmp_path, plant_config_text, backend_url):
     bl = Backlog(tmp_path, plant_text(plant_config_text), backend_url, days=1)
     try:
-        first = zygote.spawn(bl.argv("serve", "--beat-seconds", "0.2"), tmp_path / "first.log")
+        first = zygote.spawn(bl.argv("serve", "--in-process", "--beat-seconds", "0.2"),
+                             tmp_path / "first.log")
         wait_until(lambda: _beat_pid(bl) == first)
         # a plain second start is refused with the holder's pid and host, exit 1
-        second = zygote.spawn(bl.argv("serve"), tmp_path / "second.log")
+        second = zygote.spawn(bl.argv("serve", "--in-process"), tmp_path / "second.log")
         assert zygote.wait(second, 60) == ("exit", 1)
         err = (tmp_path / "second.log").read_text()
         assert f"Error: already running: pid {first} on {socket.gethostname()}" in err
         # --standby waits ...
-        standby = zygote.spawn(bl.argv("serve", "--standby", "--poll-seconds", "0.2",
+        standby = zygote.spawn(bl.argv("serve", "--in-process", "--standby",
+                                       "--poll-seconds", "0.2",
                                        "--beat-seconds", "0.2"), tmp_path / "standby.log")
         wait_until(lambda: "standby:" in _text(tmp_path / "standby.log"))
         assert zygote.wait(standby, 0.5) is None
@@ -369,7 +429,8 @@ def test_python_m_qcfit_serve_refuses_a_second_instance_from_scratch(
     bl = Backlog(tmp_path, plant_text(plant_config_text), f"sqlite:///{tmp_path / 'p.sqlite'}",
                  days=1)
     try:
-        first = zygote.spawn(bl.argv("serve", "--beat-seconds", "0.2"), tmp_path / "first.log")
+        first = zygote.spawn(bl.argv("serve", "--in-process", "--beat-seconds", "0.2"),
+                             tmp_path / "first.log")
         wait_until(lambda: _beat_pid(bl) == first)
         done = subprocess.run([sys.executable, "-m", "qcfit", *bl.argv("serve")],
                               capture_output=True, text=True, timeout=120, cwd="/")
@@ -449,7 +510,8 @@ def test_service_and_cli_writer_side_by_side(zygote, tmp_path, plant_config_text
              str(n_writer), target.id, "18"],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         assert writer.stdout.readline().strip() == "ready", writer.stderr.read()[-2000:]
-        pid = zygote.spawn(bl.argv("serve", "--beat-seconds", "0.01"), tmp_path / "serve.log")
+        pid = zygote.spawn(bl.argv("serve", "--in-process", "--beat-seconds", "0.01"),
+                           tmp_path / "serve.log")
         out, err = writer.communicate("go\n", timeout=300)
         assert writer.returncode == 0, err[-3000:]
         ops = json.loads(out.strip().splitlines()[-1])

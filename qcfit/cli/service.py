@@ -10,6 +10,7 @@ from __future__ import annotations
 import collections
 import datetime as dt
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -42,9 +43,11 @@ def _now() -> dt.datetime:
               help="Heartbeat period (for tests and tuning).")
 @click.option("--poll-seconds", type=click.FloatRange(0.05, 3600), default=5.0, hidden=True,
               help="How often a standby service tries the lock (for tests and tuning).")
+@click.option("--in-process", is_flag=True, hidden=True,
+              help="Evaluate inside this process (no evaluation child); for tests.")
 @click.pass_context
 def serve_command(ctx: click.Context, once: bool, standby: bool, beat_seconds: float,
-                  poll_seconds: float) -> None:
+                  poll_seconds: float, in_process: bool) -> None:
     """Run the qcfit service: evaluate every shift once, after its end plus the grace period.
 
     Stops cleanly on SIGTERM or Ctrl-C (an evaluation in flight is finished); SIGHUP or a
@@ -54,6 +57,19 @@ def serve_command(ctx: click.Context, once: bool, standby: bool, beat_seconds: f
     from qcfit.scheduler import Options, Service
 
     a = app(ctx)
+    if not once and not in_process and os.name == "posix":
+        # Become the lean service process (same pid, as systemd expects): without the
+        # CLI's imports, evaluating in a child process per catch-up (qcfit.scheduler).
+        argv = [sys.executable, "-m", "qcfit.scheduler", "serve", "--config",
+                str(a.config_path.resolve()), "--beat-seconds", str(beat_seconds),
+                "--poll-seconds", str(poll_seconds)]
+        if a.store_url_override:
+            argv += ["--store", a.store_url_override]
+        if standby:
+            argv.append("--standby")
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os.execv(sys.executable, argv)
     svc = Service(a.config_path, store_url=a.store_url_override,
                   options=Options(standby=standby, beat_s=beat_seconds,
                                   standby_poll_s=poll_seconds,
