@@ -29,6 +29,15 @@ file changed (an invalid file keeps the last good config running and raises a
 the heartbeat is fresh (a dead scheduler thread stops the pings, and systemd restarts us).
 SIGTERM, SIGINT (and SIGBREAK on Windows) set the stop event; then the scheduler is shut down
 waiting for the job in flight. This module and the CLI are the only places that read the clock.
+
+Lean process (:attr:`Options.isolate`, what ``qcfit serve`` runs on POSIX): ``qcfit serve``
+replaces itself (``exec``, same pid) with ``python -m qcfit.scheduler serve``, which never
+imports the statistics stack. A catch-up with shifts due starts ``python -m qcfit.scheduler
+catch-up``: it evaluates, logs each alarm change, and sends message lines (``@qcfit {json}``)
+back on stdout; the service re-logs the child's lines (it stays the only writer of the log
+file) and sends the notifications. SIGTERM is passed on to the child, which stops after the
+write transaction in flight; the kernel kills the child if the service dies (Linux
+``PR_SET_PDEATHSIG``). ``qcfit serve --once`` and Windows evaluate in-process.
 """
 
 from __future__ import annotations

@@ -460,3 +460,23 @@ def test_real_scheduler_smoke_run(plant):
     hb = read_heartbeat(plant.engine)
     assert hb.status == "stopped"
     assert plant.evaluation_rows() == len(ended)
+
+
+def test_light_due_count_matches_the_service(plant):
+    """The lean service decides whether to start an evaluation child with its own count of
+    due shifts; it must agree with service.due_shifts."""
+    from qcfit import service
+
+    plant.load(T0, T0 + dt.timedelta(days=3))
+    svc = plant.service()
+    try:
+        for hours in (0, 5, 9, 30, 80):
+            now = T0 + dt.timedelta(hours=hours)
+            assert svc.due_count(now) == len(service.due_shifts(plant.engine, plant.config,
+                                                                 now=now))
+        svc.catch_up(now=T0 + dt.timedelta(hours=30))
+        assert svc.due_count(T0 + dt.timedelta(hours=30)) == 0
+        assert svc.due_count(T0 + dt.timedelta(hours=80)) == len(
+            service.due_shifts(plant.engine, plant.config, now=T0 + dt.timedelta(hours=80))) > 0
+    finally:
+        svc.engine.dispose()

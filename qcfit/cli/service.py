@@ -172,22 +172,15 @@ def status_command(ctx: click.Context, fmt: str) -> None:
     """Show the store, config hash, whether a service runs, its last and next wake, the
     shifts waiting for evaluation and open alarms by severity."""
     a = app(ctx)
-    st = gather_status(a.engine(), a.config(), store_url=_shown(a.store_url()),
+    from qcfit.store.engine import store_info
+
+    st = gather_status(a.engine(), a.config(), store_url=store_info(a.engine()).url,
                        config_path=a.config_path.resolve(), now=_now())
     if fmt == "json":
         click.echo(json.dumps(st, indent=2))
     else:
         for text in status_lines(st):
             click.echo(text)
-
-
-def _shown(url: str) -> str:
-    from sqlalchemy.engine import make_url
-
-    try:
-        return make_url(url).render_as_string(hide_password=True)
-    except Exception:  # noqa: BLE001 - not a URL: show as given
-        return url
 
 
 # ---------------------------------------------------------------------------------------
