@@ -475,6 +475,7 @@ class _Done:
     shift_id: str
     prior_id: str | None
     rows: tuple[Mapping[str, Any], ...]
+    reset_note: str | None = None  # an acknowledgement's reset mark already on this shift
 
 
 class ChartStage:
@@ -523,6 +524,7 @@ class ChartStage:
         with read_tx(self.engine) as conn:
             stored = sql.latest_before(conn, lines, start)
             totals = sql.line_totals(conn, lines, start, N_WINDOW)
+            marks = sql.marks_at(conn, lines, start)
         out: list[ev.Finding] = []
         pending = self._pending.setdefault(shift.id, {})
         for i, line in enumerate(table.lines):
@@ -530,22 +532,30 @@ class ChartStage:
             if b is None:
                 continue
             try:
-                found, done = self._line(shift, line, b, table.counts[i], stored.get(line),
+                plan = plan_line(line, b, self.settings)
+            except InvalidArgumentError as exc:  # e.g. a baseline with one category
+                out.append(ev.Finding(kind=ev.KIND_SEQUENTIAL, line=line, verdict=ev.NOT_TESTED,
+                                      baseline_version_id=b.version_id,
+                                      reason=f"no sequential charts: {exc}"))
+                continue
+            try:
+                found, done = self._line(shift, plan, table.counts[i], stored.get(line),
                                          totals[line])
             except QcfitError as exc:
                 log.error("sequential charts of %s at %s: %s", line, shift.id, exc)
                 out.append(fault_finding(line, b.version_id, exc))
                 continue
+            done.reset_note = marks.get(line)
             pending[line] = done
             self._remember(line, done)
             out.append(found)
         return out
 
-    def _line(self, shift: ShiftInstance, line: str, b: BaselineRef, counts: np.ndarray,
+    def _line(self, shift: ShiftInstance, plan: LinePlan, counts: np.ndarray,
               stored: Any, totals: Sequence[int]) -> tuple[ev.Finding, _Done]:
         from qcfit.store.engine import to_utc_naive
 
-        plan = plan_line(line, b, self.settings)
+        line = plan.line
         prior = self._prior(line, to_utc_naive(shift.start), stored)
         lim = self.limits(plan, n_level(totals))
         ls = advance(plan, prior, counts, lim)
@@ -558,7 +568,8 @@ class ChartStage:
         mine = [d for d in self._done.get(line, []) if d.start < start]
         if mine and (stored is None or mine[-1].start >= stored.start_utc):
             d = mine[-1]
-            return PriorCharts(d.shift_id, {r["chart"]: r["state"] for r in d.rows})
+            return PriorCharts(d.shift_id, {r["chart"]: r["state"] for r in d.rows},
+                               d.reset_note)
         if stored is None:
             return None
         return PriorCharts(stored.shift_id, stored.states, stored.reset_after)

@@ -295,6 +295,13 @@ def test_ack_with_cause_removed_restarts_the_line_charts(drifted):
     with read_tx(engine) as conn:
         marked = chart_sql.states_at(conn, shift_row_id(engine, work[-1].id), ["L3"])["L3"]
     assert marked.reset_after == f"alarm {a['id']} acknowledged by Ana, cause removed"
+    # re-evaluating the marked shift (and so the next ones) keeps the restart where it was
+    redone = service.evaluate_shifts(engine, config, [work[-1]], now=after(more))
+    assert [r.shift_id for r in redone] == [work[-1].id, *(m.id for m in more)]
+    with read_tx(engine) as conn:
+        again = chart_sql.states_at(conn, shift_row_id(engine, more[0].id), ["L3"])
+        marked = chart_sql.states_at(conn, shift_row_id(engine, work[-1].id), ["L3"])["L3"]
+    assert again["L3"].states["MEWMA"]["t"] == 1 and marked.reset_after
     plant_wide = CliRunner().invoke(main, ["--config", str(path), "--store", url, "ack", "999",
                                            "--by", "Ana", "--cause-removed"])
     assert plant_wide.exit_code == 2  # no such alarm
@@ -398,3 +405,15 @@ def test_the_alarm_story_lists_the_charts_and_where_the_change_began(drifted):
     began = [ln for ln in lines if ">= limit" in ln and "change began 2026-01-" in ln]
     assert began and any("flash up 15.0% ->" in ln for ln in lines)
     assert "p-value by" not in res.output  # a chart has no p-value
+
+
+def test_a_baseline_with_one_category_is_not_charted(tmp_path, plant_config_text):
+    _, config, engine, cal = make_plant(tmp_path, plant_config_text, FAST)
+    work = shifts(cal, 1)
+    load(engine, work, drift_counts(start=99))
+    table = service._read_tables(engine, config, work)[0]
+    one = ref(np.array([1.0, 0, 0, 0, 0, 0]))
+    found = charts.ChartStage(engine, config, now=T0)(table, {"L1": one, "L2": None})
+    assert [(f.line, f.verdict) for f in found] == [("L1", "not-tested")]
+    assert "needs two categories with a share > 0" in found[0].reason
+    engine.dispose()

@@ -101,6 +101,15 @@ def states_at(conn: Connection, shift_row_id: int, lines: Sequence[str] | None =
     return _group(conn.execute(q))
 
 
+def marks_at(conn: Connection, lines: Sequence[str], start_utc: dt.datetime) -> dict[str, str]:
+    """Reset marks on the lines' chart rows at the shift starting at ``start_utc``."""
+    if not lines:
+        return {}
+    rows = conn.execute(_rows_select().where(chart_state.c.line.in_(list(lines)),
+                                             shift.c.start_utc == start_utc))
+    return {ln: mark for ln, g in _group(rows).items() if (mark := g.reset_after)}
+
+
 def chain_ids(conn: Connection, line: str, until_utc: dt.datetime, limit: int
               ) -> list[tuple[dt.datetime, str]]:
     """(start, shift id) of the line's chain up to and including ``until_utc``, newest first."""
