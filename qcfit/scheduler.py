@@ -266,14 +266,15 @@ class Service:
 
     def __init__(self, config_path: str | Path, *, store_url: str | None = None,
                  options: Options | None = None,
-                 clock: Callable[[], dt.datetime] = utc_now) -> None:
+                 clock: Callable[[], dt.datetime] = utc_now,
+                 config: Config | None = None) -> None:
         self.config_path = Path(config_path).resolve()
         self.options = options or Options()
         self.clock = clock
         self.stop = threading.Event()
         self.exit_code = 0
         self._store_override = store_url
-        self.config: Config = load_config(self.config_path)
+        self.config: Config = config if config is not None else load_config(self.config_path)
         self.store_url = self._url_for(self.config)
         self.engine = make_engine(self.store_url)
         self.notifier = Notifier(self.config.notify, backoff_s=self.options.notify_backoff_s)
@@ -392,13 +393,16 @@ class Service:
                 str(self._announced or 0)]
         if self._store_override:
             argv += ["--store", self._store_override]
-        child = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=subprocess.PIPE,
+        child = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                                  stderr=subprocess.STDOUT, text=True, encoding="utf-8",
                                  errors="replace")
         self._child = child
+        assert child.stdin is not None and child.stdout is not None
+        # the config this service runs (the last good one), not whatever the file says now
+        child.stdin.write(self.config.text)
+        child.stdin.close()
         if self.stop.is_set():
             child.terminate()
-        assert child.stdout is not None
         for line in child.stdout:
             self._from_child(line.rstrip("\n"))
         code = child.wait()
@@ -837,8 +841,14 @@ def _child_main(args: Any) -> int:
     _die_with_parent()
     if os.getppid() == 1:
         return 1  # the service is already gone
+    import tomllib
+
+    from qcfit.config import parse_config
+
     logging.basicConfig(level=logging.INFO, format=CHILD_FORMAT, stream=sys.stdout, force=True)
-    svc = Service(args.config, store_url=args.store)
+    text = sys.stdin.read()  # the service's config text (its last good one)
+    config = parse_config(tomllib.loads(text), text=text, path=Path(args.config))
+    svc = Service(args.config, store_url=args.store, config=config)
     logging.getLogger().setLevel(svc.config.log.level)
     svc._child_mode = True
     svc._announced = args.after_event

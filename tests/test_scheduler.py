@@ -480,3 +480,28 @@ def test_light_due_count_matches_the_service(plant):
             service.due_shifts(plant.engine, plant.config, now=T0 + dt.timedelta(hours=80))) > 0
     finally:
         svc.engine.dispose()
+
+
+def test_evaluation_child_runs_the_last_good_config_not_the_file(plant):
+    """Lean mode: the catch-up runs in ``python -m qcfit.scheduler catch-up``; with an
+    invalid file on disk the child still gets the config the service runs."""
+    shifts = plant.load(T0, T0 + dt.timedelta(days=1))
+    svc = plant.service(isolate=True)
+    try:
+        good = svc.config.hash
+        text = plant.config_path.read_text(encoding="utf-8")
+        plant.config_path.write_text(text.replace("[lines]", "[lines\n"), encoding="utf-8")
+        svc.request_reload()
+        assert svc.check_reload() is False and svc.config.hash == good
+        now = T0 + dt.timedelta(days=1)
+        assert svc.catch_up(now=now) == []  # the summaries stay in the child
+        ended = [s for s in shifts if s.end <= now]
+        assert len(plant.evaluations()) == len(ended) and svc.evaluated == len(ended)
+        with read_tx(plant.engine) as conn:
+            hashes = set(conn.execute(select(evaluation.c.config_hash)).scalars())
+        assert hashes == {good}
+        assert svc.due_count(now) == 0
+        assert svc.catch_up(now=now) == []  # nothing due: no child at all
+        assert svc.evaluated == len(ended)
+    finally:
+        svc.engine.dispose()
