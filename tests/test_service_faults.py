@@ -49,7 +49,8 @@ BACKLOG_DAYS = 14
 
 ZYGOTE = textwrap.dedent(
     """
-    import json, os, sys, time
+    import ctypes, json, os, sys, time
+    ctypes.CDLL("libc.so.6").prctl(1, 9)  # PR_SET_PDEATHSIG: end with the test process
     import qcfit.cli, qcfit.scheduler, qcfit.service, qcfit.ingest  # imported once, here
     print(json.dumps({"ready": os.getpid()}), flush=True)
     for line in sys.stdin:
