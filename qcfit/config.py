@@ -70,7 +70,8 @@ are strings ``"HH:MM"`` or ``"HH:MM:SS"`` (a bare TOML time needs seconds: ``06:
     ``min_effect_w``  number >= 0, default 0.30. Cohen's w floor for a baseline (mix) alarm
         (Cohen's "medium" effect: a shift of 100-300 defects cannot show a smaller change with
         useful power; small lasting changes are the sequential charts' job).
-    ``min_effect_v``  number in [0, 1], default 0.10. Cramér's V floor for between-lines.
+    ``min_effect_v``  number in [0, 1], default 0.15. Cramér's V floor for between-lines
+        (V = w / sqrt(min(lines, categories) - 1): 0.15 matches w = 0.30 for five lines).
     ``min_rate_ratio``  number >= 1, default 1.25. Observed / baseline defect rate floor.
     ``multiple_testing``  ``"bh"`` (Benjamini-Hochberg), ``"holm"``, ``"by"``
         (Benjamini-Yekutieli) or ``"none"``, default ``"bh"``; across all tests of one shift.
@@ -184,7 +185,7 @@ Complete example (every key; the values shown are the defaults unless marked)::
     alarm_level = 0.01
     watch_level = 0.05
     min_effect_w = 0.30
-    min_effect_v = 0.10
+    min_effect_v = 0.15
     min_rate_ratio = 1.25
     multiple_testing = "bh"
     power = 0.80
@@ -362,7 +363,7 @@ class SourceSettings:
 DEFAULT_ALARM_LEVEL = 0.01
 DEFAULT_WATCH_LEVEL = 0.05
 DEFAULT_MIN_EFFECT_W = 0.30
-DEFAULT_MIN_EFFECT_V = 0.10
+DEFAULT_MIN_EFFECT_V = 0.15
 DEFAULT_MIN_RATE_RATIO = 1.25
 DEFAULT_MULTIPLE_TESTING = "bh"
 DEFAULT_POWER = 0.80

@@ -82,5 +82,5 @@ class CountTable:
     shift: ShiftInstance
     lines: tuple[str, ...]
     categories: tuple[str, ...]
-    counts: "np.ndarray"
-    units: "np.ndarray"
+    counts: np.ndarray
+    units: np.ndarray

@@ -5,7 +5,7 @@ Runs the same commands a plant engineer would type (see the README's walk-throug
     qcfit --config sample_lines/plant.toml --store sqlite:///demo-store/plant.sqlite init
     qcfit ... load events sample_lines/data/defect_events.csv
     qcfit ... load units sample_lines/data/units_inspected.csv
-    qcfit ... evaluate --since 2026-09-07
+    qcfit ... evaluate --since 2026-09-07 --until 2026-11-21
     qcfit ... alarms
     qcfit ... report --shift 2026-10-07_B --out demo-store/report-2026-10-07_B.html
 
@@ -32,6 +32,7 @@ CONFIG = HERE / "plant.toml"
 DATA = HERE / "data"
 STORE_URL = f"sqlite:///{STORE_DIR / 'plant.sqlite'}"
 FIRST_DAY = "2026-09-07"
+LAST_DAY = "2026-11-21"  # the data end with shift 2026-11-21_C
 JUMP_SHIFT = "2026-10-07_B"
 
 
@@ -51,7 +52,7 @@ def main() -> None:
     step("Create the store", "init")
     step("Load the logged rejects (raw defect events)", "load", "events", str(DATA / "defect_events.csv"))
     step("Load the units inspected per shift and line", "load", "units", str(DATA / "units_inspected.csv"))
-    step("Evaluate every ended shift", "evaluate", "--since", FIRST_DAY, "--quiet")
+    step("Evaluate every shift of the demo period", "evaluate", "--since", FIRST_DAY, "--until", LAST_DAY, "--quiet")
     step("The alarm log a supervisor reviews", "alarms")
     if "qcfit.cli.report" in COMMAND_MODULES:
         out = STORE_DIR / f"report-{JUMP_SHIFT}.html"

@@ -48,7 +48,7 @@ OTH = "other"
 alarm_level = 0.01
 watch_level = 0.05
 min_effect_w = 0.30
-min_effect_v = 0.10
+min_effect_v = 0.15
 multiple_testing = "bh"
 
 [baseline.plant]

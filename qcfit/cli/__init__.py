@@ -125,7 +125,7 @@ def _register() -> None:
 def run(argv: list[str] | None = None) -> int:
     """Run the CLI and return its exit code (used by ``main`` and the tests)."""
     try:
-        main.main(args=argv, standalone_mode=False)
+        result = main.main(args=argv, standalone_mode=False)
     except click.exceptions.Exit as exc:
         return exc.exit_code
     except click.ClickException as exc:
@@ -134,7 +134,8 @@ def run(argv: list[str] | None = None) -> int:
     except click.exceptions.Abort:
         click.echo("Aborted.", err=True)
         return EXIT_FAILURE
-    return 0
+    # Without standalone mode click returns the code a command exited with (ctx.exit(code)).
+    return result if isinstance(result, int) else 0
 
 
 _register()
