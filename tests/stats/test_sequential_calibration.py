@@ -201,3 +201,26 @@ def test_calibration_key_changes_with_what_the_limits_depend_on():
     assert k0 != calibration_key(d, 0, [200, 150], arl0=500.0)
     assert k0 != calibration_key(make_design(np.array([P0, P0]), ewma_lambda=0.1), 0,
                                  [200, 150])
+
+
+@pytest.mark.parametrize(("mu", "k", "h"), [(4.0, 5, 8), (1.5, 2, 12)])
+def test_all_limits_agree_with_one_solve_per_limit(mu, k, h):
+    # Cross-check of two computations of the same Brook & Evans (1972) chain: one elimination
+    # for every limit against a dense solve per limit (Poisson CUSUM of Lucas 1985).
+    from scipy import stats
+
+    from qcfit.stats.sequential_markov import arl_all_limits, arl_integer_chain
+
+    pmf = stats.poisson.pmf(np.arange(60), mu)
+    pmf /= pmf.sum()
+    every = arl_all_limits(pmf, -k, h)
+    one = [arl_integer_chain(pmf, -k, lim)[0] for lim in range(1, h + 1)]
+    assert every == pytest.approx(one, rel=1e-10)
+    assert every[-1] == pytest.approx(poisson_cusum_arl(mu, k, h), rel=1e-10)
+
+
+def test_all_limits_chain_that_cannot_alarm_is_infinite():
+    # J in {-1, 0}: S never leaves 0, so no limit is ever reached (defined answer, no crash).
+    from qcfit.stats.sequential_markov import arl_all_limits
+
+    assert np.all(np.isinf(arl_all_limits(np.array([0.5, 0.5]), -1, 4)))
