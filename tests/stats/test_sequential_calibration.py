@@ -16,6 +16,7 @@ from qcfit.stats.sequential import (
 )
 from qcfit.stats.sequential_calibration import (
     ArlCurve,
+    MultinomialSampler,
     calibrate,
     calibration_key,
     conservative_limits,
@@ -128,7 +129,8 @@ def test_simulated_traces_equal_the_update_recursion():
     d = make_design(P0, ewma_lambda=0.2, concerns=[concern_share_up(P0, 3, 1.5)])
     paths, horizon, n = 5, 30, 120
     tr = simulate_traces(d, 0, [n], paths=paths, horizon=horizon, rng=np.random.default_rng(15))
-    x = np.random.default_rng(15).multinomial(np.full((horizon, paths), n), P0)
+    # the simulation's own draws for this seed (one chunk, n fixed: no draws for n)
+    x = MultinomialSampler(P0, n).draw(np.random.default_rng(15), np.full((horizon, paths), n))
     dm = d.select([0] * paths)
     lim = make_limits(dm)
     st = init_state(dm)
@@ -224,3 +226,35 @@ def test_all_limits_chain_that_cannot_alarm_is_infinite():
     from qcfit.stats.sequential_markov import arl_all_limits
 
     assert np.all(np.isinf(arl_all_limits(np.array([0.5, 0.5]), -1, 4)))
+
+
+def test_multinomial_sampler_draws_the_multinomial_law():
+    # Reference: scipy.stats.multinomial.pmf of every outcome of n = 6 over 4 categories;
+    # Pearson's goodness of fit of 200,000 draws (seeded) to it.
+    from scipy import stats
+
+    p = np.array([0.5, 0.3, 0.15, 0.05])
+    x = MultinomialSampler(p, 6).draw(np.random.default_rng(3), np.full(200_000, 6)).astype(int)
+    keys, count = np.unique(x, axis=0, return_counts=True)
+    assert np.all(x.sum(axis=1) == 6)
+    expected = stats.multinomial.pmf(keys, 6, p) * x.shape[0]
+    big = expected >= 5  # outcomes with expected count below 5 pooled into one cell
+    obs = np.append(count[big], x.shape[0] - count[big].sum())
+    exp = np.append(expected[big], x.shape[0] - expected[big].sum())
+    x2 = float(((obs - exp) ** 2 / exp).sum())
+    assert big.sum() > 50 and stats.chi2.sf(x2, obs.size - 1) > 0.001
+
+
+def test_multinomial_sampler_keeps_totals_and_means():
+    p = np.array([0.4, 0.25, 0.15, 0.1, 0.06, 0.04])
+    n = np.random.default_rng(4).integers(0, 300, size=(50, 400))
+    x = MultinomialSampler(p, 299).draw(np.random.default_rng(5), n)
+    assert x.shape == (50, 400, 6) and np.array_equal(x.sum(axis=-1), n) and x.min() >= 0
+    mean = x.reshape(-1, 6).sum(axis=0) / n.sum()
+    se = np.sqrt(p * (1 - p) / n.sum())
+    assert np.all(np.abs(mean - p) < 5 * se)
+    # above the table size it falls back to numpy's multinomial (same law)
+    big = MultinomialSampler(p, 5000)
+    assert big.tables is None
+    y = big.draw(np.random.default_rng(6), np.full(10, 5000))
+    assert np.array_equal(y.sum(axis=-1), np.full(10, 5000))
