@@ -3,6 +3,10 @@
 * calibration of 50 lines (k = 6..10, 10 lines each) to ARL0 370 at the default 300 paths,
   serially and split over 2 processes (same limits either way: per-line seed streams);
   target: at most 10 s on 2 cores;
+* the service's own path: ``qcfit.charts.calibrate_plan`` of 50 lines (k = 6..10) with two
+  concern CUSUMs each ("category up by 1.5x / 2x"; the MEWMA + bank pair then runs at twice
+  the target ARL0, the concern chains at four times it), CPU seconds in one process;
+  target: at most 10 s;
 * one shift's update of 2,000 lines, vectorized vs a per-line loop of the same function
   (ratio; the naive baseline runs in the same process);
 * the Brook-Evans calibration of one concern CUSUM.
@@ -27,6 +31,7 @@ from qcfit.stats.sequential_calibration import calibrate
 from qcfit.stats.sequential_markov import calibrate_llr_cusum
 
 N_PROFILE = [150, 200, 250]
+SERVICE_LEVEL = 200  # typical defects per shift of the service-path lines
 SEED = 7
 
 
@@ -78,6 +83,37 @@ def bench_calibration() -> list[dict]:
     ]
 
 
+def _service_plans():
+    from types import SimpleNamespace
+
+    from qcfit.charts import plan_line
+
+    settings = SimpleNamespace(ewma_lambda=0.2, concerns=[
+        SimpleNamespace(category="C0", factor=1.5), SimpleNamespace(category="C1", factor=2.0)])
+    plans = []
+    for k in range(6, 11):
+        for i, p in enumerate(_p0(k, 10)):
+            codes = tuple(f"C{j}" for j in range(k))
+            b = SimpleNamespace(proportions=tuple(p), categories=codes, version_id=1, name="b")
+            plans.append(plan_line(f"L{k}{i}", b, settings))
+    return plans
+
+
+def bench_service_calibration() -> list[dict]:
+    from qcfit.charts import calibrate_plan
+
+    plans = _service_plans()
+    t0 = time.perf_counter()
+    c0 = time.process_time()
+    for j, plan in enumerate(plans):
+        calibrate_plan(plan, SERVICE_LEVEL, 370.0, SEED + j)
+    cpu = time.process_time() - c0
+    return [{"bench": "sequential", "case": "service calibration 50 lines, 2 concerns each",
+             "seconds": round(time.perf_counter() - t0, 2), "cpu_seconds": round(cpu, 2),
+             "target_seconds": 10.0, "met": cpu <= 10.0,
+             "load_avg_1min": round(os.getloadavg()[0], 1)}]
+
+
 def bench_update(lines: int = 2000, k: int = 8, shifts: int = 20) -> list[dict]:
     p0 = _p0(k, lines)
     d = make_design(p0, concerns=[concern_move(p0, 0, 1, 0.1)])
@@ -112,7 +148,8 @@ def bench_markov() -> list[dict]:
 
 
 def run() -> list[dict]:
-    rows = bench_calibration() + bench_update() + bench_markov()
+    rows = (bench_calibration() + bench_service_calibration() + bench_update()
+            + bench_markov())
     for r in rows:
         print("  ".join(f"{k}={v}" for k, v in r.items()))
     return rows

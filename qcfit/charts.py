@@ -28,8 +28,9 @@ Rules (documented in the README):
   calibration cannot be made, the conservative limits (ln(D ARL0) for the bank, ln(ARL0) for
   a CUSUM, MEWMA off) are used and the finding says so. One evaluation run spends at most
   ``CALIBRATION_BUDGET_S`` (10 CPU seconds) calibrating; lines beyond it get the conservative
-  limits for that run and are calibrated by a following run (50 lines with two concerns take
-  about 27 CPU seconds, so a cold service start fills the cache over three runs).
+  limits for that run and are calibrated by a following run (50 lines of 6 to 10 categories
+  with two concerns each take about 6 CPU seconds, ``python -m bench sequential``, so a cold
+  service start fills the cache in its first run).
 * **Resets**: the charts start afresh at a line's first shift, when its baseline version or
   chart settings change, and after an acknowledgement with the cause removed.
 * **Order**: the chart rows after shift s are computed from the rows of the latest shift before
