@@ -1,7 +1,8 @@
 """Run every ``bench_*`` module's ``run()`` and print its rows as a table.
 
 Usage: ``python -m bench [NAME ...]`` runs only modules whose name contains a NAME.
-Exit code 1 if a module raised; the others still run.
+Exit code 1 if a module raised or any row reports a missed target (``ok`` or ``met`` false);
+the others still run, and the missed rows are listed at the end.
 """
 
 from __future__ import annotations
@@ -34,8 +35,14 @@ def format_table(rows: list[dict]) -> str:
     return "\n".join(lines)
 
 
+def missed(rows: list[dict]) -> list[dict]:
+    """Rows whose own verdict (``ok`` or ``met``) says the target was not reached."""
+    return [r for r in rows if r.get("ok", r.get("met", True)) is False]
+
+
 def main(argv: list[str]) -> int:
     failed = 0
+    short: list[str] = []
     for name in discover(argv):
         print(f"== {name}", flush=True)
         t0 = time.perf_counter()
@@ -45,9 +52,13 @@ def main(argv: list[str]) -> int:
             traceback.print_exc()
             failed += 1
             continue
-        print(format_table(list(rows or [])))
+        rows = list(rows or [])
+        print(format_table(rows))
         print(f"({time.perf_counter() - t0:.1f} s)\n", flush=True)
-    return 1 if failed else 0
+        short += [f"{name}: {r}" for r in missed(rows)]
+    if short:
+        print("Targets missed:\n" + "\n".join(f"  {line}" for line in short))
+    return 1 if failed or short else 0
 
 
 if __name__ == "__main__":
