@@ -258,25 +258,21 @@ def top_shifts(
     limit: int = TOP_CATEGORIES,
 ) -> tuple[CategoryShift, ...]:
     """The categories with the largest |adjusted residual| (those >= 2 first; at least one)."""
-    order = np.argsort(-np.abs(residuals), kind="stable")
+    size = np.abs(residuals)
+    order = np.argsort(-size, kind="stable")
     n = float(observed.sum())
-    chosen = [int(j) for j in order if abs(residuals[j]) >= RESIDUAL_WORTH_NAMING][:limit]
+    chosen = order[size[order] >= RESIDUAL_WORTH_NAMING][:limit].tolist()
     if not chosen and len(order) and np.isfinite(residuals[order[0]]):
         chosen = [int(order[0])]
+    res, obs = np.asarray(residuals, dtype=float), np.asarray(observed)
+    exp, ref = np.asarray(expected, dtype=float), np.asarray(reference, dtype=float)
     out = []
     for j in chosen:
-        r = float(residuals[j])
-        out.append(
-            CategoryShift(
-                code=codes[j],
-                direction="up" if r > 0 else "down",
-                adjusted_residual=r,
-                observed=int(observed[j]),
-                expected=float(expected[j]),
-                share=float(observed[j] / n) if n > 0 else 0.0,
-                reference_share=float(reference[j]),
-            )
-        )
+        r = float(res[j])
+        o = int(obs[j])
+        out.append(CategoryShift(code=codes[j], direction="up" if r > 0 else "down",
+                                 adjusted_residual=r, observed=o, expected=float(exp[j]),
+                                 share=o / n if n > 0 else 0.0, reference_share=float(ref[j])))
     return tuple(out)
 
 
@@ -360,24 +356,32 @@ def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int
     codes = tuple(table.categories)
     powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
                           observed.sum(axis=1), [j.limits.alarm_level for j in jobs])
-    return [_gof_finding(jobs[i], result, i, observed[i], props[i], codes, float(powers[i]),
+    cols = {name: np.asarray(getattr(result, name)).tolist() for name in _GOF_FIELDS}
+    cols["expected"] = np.atleast_2d(np.asarray(result.expected, dtype=float))
+    cols["adjusted_residuals"] = np.atleast_2d(np.asarray(result.adjusted_residuals, dtype=float))
+    return [_gof_finding(jobs[i], cols, i, observed[i], props[i], codes, float(powers[i]),
                          reason) for i in range(len(jobs))]
 
 
-def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props: np.ndarray,
+_GOF_FIELDS = ("impossible", "tested", "method_reason", "dof", "statistic", "pvalue",
+               "effect_size", "method", "pvalue_se", "min_expected")
+
+
+def _gof_finding(job: _GofJob, cols: Mapping[str, Any], i: int, observed: np.ndarray,
+                 props: np.ndarray,
                  codes: tuple[str, ...], power: float, reason: str | None = None) -> Finding:
     limits = job.limits
     n = int(observed.sum())
-    expected = np.asarray(_attr(result, "expected", i), dtype=float)
-    residuals = np.asarray(_attr(result, "adjusted_residuals", i), dtype=float)
+    expected = cols["expected"][i]
+    residuals = cols["adjusted_residuals"][i]
     common = {"kind": KIND_BASELINE, "line": job.line, "n": n,
               "baseline_version_id": job.baseline.version_id,
               "alarm_level": float(limits.alarm_level), "watch_level": float(limits.watch_level),
-              "categories": codes, "observed": tuple(float(x) for x in observed),
-              "expected": tuple(float(x) for x in expected),
+              "categories": codes, "observed": tuple(observed.astype(float).tolist()),
+              "expected": tuple(expected.tolist()),
               "details": {"baseline": job.baseline.name,
                           "effective": job.baseline.effective.isoformat()}}
-    if bool(_attr(result, "impossible", i)):
+    if bool(cols["impossible"][i]):
         bad = [j for j in range(len(codes)) if props[j] <= 0 and observed[j] > 0]
         words = ", ".join(f"{codes[j]} ({int(observed[j])})" for j in bad)
         return Finding(
@@ -388,28 +392,28 @@ def _gof_finding(job: _GofJob, result: Any, i: int, observed: np.ndarray, props:
                 CategoryShift(codes[j], "up", math.inf, int(observed[j]), 0.0,
                               float(observed[j] / n), 0.0) for j in bad),
             **common)
-    if not bool(_attr(result, "tested", i)):
+    if not bool(cols["tested"][i]):
         return Finding(verdict=NOT_TESTED,
-                       reason=str(_attr(result, "method_reason", i) or "not tested"), **common)
-    dof = int(_attr(result, "dof", i))
+                       reason=str(cols["method_reason"][i] or "not tested"), **common)
+    dof = int(cols["dof"][i])
     enough = power >= limits.power
     return Finding(
         verdict=TESTED if enough else TOO_LITTLE_DATA,
         reason=_power_reason(enough, power, limits.power, "w", limits.min_effect_w, n),
-        statistic=float(_attr(result, "statistic", i)),
+        statistic=float(cols["statistic"][i]),
         dof=dof,
-        pvalue=float(_attr(result, "pvalue", i)),
-        effect_size=float(_attr(result, "effect_size", i)),
+        pvalue=float(cols["pvalue"][i]),
+        effect_size=float(cols["effect_size"][i]),
         effect_name="w",
         effect_floor=float(limits.min_effect_w),
         power=power,
         power_needed=float(limits.power),
-        method=str(_attr(result, "method", i)),
-        method_reason=reason or _str_or_none(_attr(result, "method_reason", i)),
-        mc_se=_opt_float(_attr(result, "pvalue_se", i)),
-        min_expected=_opt_float(_attr(result, "min_expected", i)),
+        method=str(cols["method"][i]),
+        method_reason=reason or _str_or_none(cols["method_reason"][i]),
+        mc_se=_opt_float(cols["pvalue_se"][i]),
+        min_expected=_opt_float(cols["min_expected"][i]),
         top_categories=top_shifts(codes, observed, expected, residuals, props),
-        adjusted_residuals=tuple(float(x) for x in residuals),
+        adjusted_residuals=tuple(residuals.tolist()),
         **common,
     )
 
@@ -630,8 +634,8 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
     for i, line in enumerate(table.lines):
         def one(i: int = i) -> Finding:
             if big is not None and rows_n[i] > 0 and pair_ok[i]:
-                f = _vs_rest_finding(table, counts, i, big, i, limits, float(powers))
-                return dataclasses.replace(f, method_reason=_large_reason(pair_e[i]))
+                return _vs_rest_finding(table, counts, i, big, i, limits, float(powers),
+                                        method_reason=_large_reason(pair_e[i]))
             pair = np.stack([counts[i], col - counts[i]])
             res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
                                               seed=seed, **_mc_options(limits))
@@ -641,7 +645,7 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
 
 
 def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r: int,
-                     limits: Any, power: float) -> Finding:
+                     limits: Any, power: float, method_reason: str | None = None) -> Finding:
     line = table.lines[i]
     mine = counts[i]
     col = counts.sum(axis=0)
@@ -649,15 +653,16 @@ def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r:
     if not bool(res.tested[r]):
         return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED, n=n_mine,
                        reason=str(res.method_reason[r]))
-    cols = [j for j in range(len(mine)) if col[j] > 0]
+    cols = np.flatnonzero(col > 0)
     rest = (col - mine)[cols]
     total = int(col.sum())
     dof = int(res.dof[r])
     enough = power >= limits.power
     expected = np.asarray(res.expected[r], dtype=float)[cols]
     residuals = np.asarray(res.adjusted_residuals[r], dtype=float)[cols]
-    codes = tuple(table.categories[j] for j in cols)
-    rest_share = rest / rest.sum() if rest.sum() > 0 else np.zeros(len(cols))
+    codes = tuple(table.categories[j] for j in cols.tolist())
+    rest_sum = rest.sum()
+    rest_share = rest / rest_sum if rest_sum > 0 else np.zeros(len(cols))
     return Finding(
         kind=KIND_VS_REST, line=line,
         verdict=TESTED if enough else TOO_LITTLE_DATA,
@@ -667,15 +672,16 @@ def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r:
         effect_floor=float(limits.min_effect_v),
         alarm_level=float(limits.alarm_level), watch_level=float(limits.watch_level),
         power=power, power_needed=float(limits.power),
-        method=str(res.method[r]), method_reason=str(res.method_reason[r]),
+        method=str(res.method[r]),
+        method_reason=method_reason if method_reason is not None else str(res.method_reason[r]),
         mc_se=_opt_float(res.pvalue_se[r]), n=n_mine,
         min_expected=float(expected.min()) if len(expected) else None,
         top_categories=top_shifts(codes, mine[cols], expected, residuals, rest_share),
         categories=codes,
-        observed=tuple(float(x) for x in mine[cols]),
-        expected=tuple(float(x) for x in expected),
-        adjusted_residuals=tuple(float(x) for x in residuals),
-        details={"rest_observed": [int(x) for x in rest]},
+        observed=tuple(mine[cols].astype(float).tolist()),
+        expected=tuple(expected.tolist()),
+        adjusted_residuals=tuple(residuals.tolist()),
+        details={"rest_observed": rest.astype(int).tolist()},
     )
 
 

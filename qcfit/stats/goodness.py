@@ -64,8 +64,10 @@ def _model(n: int, p: np.ndarray, statistic: str) -> pvalues.Model:
     k = int(support.sum())
     rank = _ranker(n, ps, statistic)
 
+    draw = pvalues.multinomial_sampler(ps, n)
+
     def sample(rng: np.random.Generator, size: int) -> np.ndarray:
-        return rank(rng.multinomial(n, ps, size=size))
+        return rank(draw.draw(rng, np.full(size, n)))
 
     def enumerate_() -> tuple[np.ndarray, np.ndarray]:
         x = compositions(n, k)
