@@ -17,21 +17,32 @@ How an upgrade runs (:func:`upgrade_store`, :func:`init_store`):
   ``PRAGMA foreign_key_check`` before commit; any violation rolls everything back;
 * SQLite: before upgrading a store that already has a revision, a copy is taken with the
   online backup API: ``<file>.rev-<old revision>.bak``.
+
+Writing a new revision after changing ``schema.py`` (developers)::
+
+    python -m qcfit.store.migrate revision -m "what changed" [--url URL]
+
+autogenerates it against a scratch store (a temporary SQLite file unless ``--url`` names
+one) and prints the new file's path (:func:`new_revision`).
 """
 
 from __future__ import annotations
 
+import argparse
 import datetime as dt
 import functools
 import logging
 import sqlite3
+import sys
 import sysconfig
+import tempfile
 import zlib
-from collections.abc import Iterator
+from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from types import MappingProxyType
+from typing import Any, Protocol
 
 from alembic import command
 from alembic.config import Config as AlembicConfig
@@ -45,6 +56,7 @@ from sqlalchemy.exc import SQLAlchemyError
 
 import qcfit
 from qcfit.errors import QcfitError, SchemaError, StoreError
+from qcfit.store.baselines import BaselineSpecLike, count_versions, sync_baseline_versions
 from qcfit.store.engine import (
     BEGIN_OPTION,
     NOT_INITIALISED,
@@ -65,6 +77,7 @@ from qcfit.store.schema import metadata
 log = logging.getLogger(__name__)
 
 __all__ = [
+    "InitConfigLike",
     "InitReport",
     "UpgradeReport",
     "alembic_config",
@@ -100,19 +113,33 @@ class UpgradeReport:
         return self.from_revision != self.to_revision
 
 
+class InitConfigLike(ConfigLike, Protocol):
+    """What :func:`init_store` reads of ``qcfit.config.Config``: the reference tables'
+    parts (:class:`~qcfit.store.reference.ConfigLike`) and the baselines."""
+
+    @property
+    def baselines(self) -> Sequence[BaselineSpecLike]: ...
+
+
 @dataclass(frozen=True, slots=True)
 class InitReport:
-    """What :func:`init_store` did (the CLI prints it)."""
+    """What :func:`init_store` did (the CLI prints it).
+
+    ``baseline_versions``: content hash -> ``baseline_version.id`` of every baseline in the
+    config; ``baseline_versions_new``: how many of them were recorded by this run."""
 
     store: str  # URL, password hidden
     schema: UpgradeReport
     reference: ReferenceSync
     config_version_id: int
     config_version_new: bool
+    baseline_versions: Mapping[str, int]
+    baseline_versions_new: int
 
     @property
     def changed(self) -> bool:
-        return self.schema.changed or self.reference.changed or self.config_version_new
+        return (self.schema.changed or self.reference.changed or self.config_version_new
+                or self.baseline_versions_new > 0)
 
 
 # --- locating the migrations --------------------------------------------------------------
@@ -237,16 +264,18 @@ def upgrade_store(
 
 def init_store(
     engine: Engine,
-    config: ConfigLike,
+    config: InitConfigLike,
     *,
     os_user: str = "unknown",
     now: dt.datetime | None = None,
     migrations: Path | None = None,
 ) -> InitReport:
-    """Create or upgrade the store, sync lines/categories, record the config version.
+    """Create or upgrade the store, sync lines/categories, record the config version and
+    every baseline version of the config.
 
     All in one transaction: after any failure the store is as it was. ``now`` (aware)
-    is recorded as ``config_version.first_seen_utc``; default: the database's clock.
+    is recorded as ``config_version.first_seen_utc`` and as ``first_seen_utc`` of each
+    baseline version not recorded before; default: the database's clock.
     Running it again with the same config changes nothing (``report.changed`` is False).
     """
     location = (migrations or migrations_dir()).resolve()
@@ -256,11 +285,15 @@ def init_store(
         reference = sync_reference(conn, config.lines, config.categories)
         when = now if now is not None else db_utc_now(conn)
         version_id, new = record_config_version_ex(conn, config, os_user, when)
+        before = count_versions(conn)
+        baselines = sync_baseline_versions(conn, config, os_user=os_user, now=when)
+        baselines_new = count_versions(conn) - before
     if copy is not None and not schema.changed:
         copy.unlink(missing_ok=True)
         copy = None
     schema = UpgradeReport(schema.from_revision, schema.to_revision, copy)
-    return InitReport(store_info(engine).url, schema, reference, version_id, new)
+    return InitReport(store_info(engine).url, schema, reference, version_id, new,
+                      MappingProxyType(dict(baselines)), baselines_new)
 
 
 def _upgrade_in(conn: Connection, location: Path) -> UpgradeReport:
@@ -403,3 +436,45 @@ def new_revision(
     scripts = script if isinstance(script, list) else [script]
     assert scripts and scripts[0] is not None
     return Path(scripts[0].path)
+
+
+# --- command line (developers) ------------------------------------------------------------
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="python -m qcfit.store.migrate",
+        description="Write the next store migration, autogenerated from qcfit/store/schema.py.",
+    )
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    rev = commands.add_parser(
+        "revision", help="autogenerate the next revision into the migrations folder",
+        description="Autogenerate the next revision from the difference between schema.py "
+                    "and a scratch store upgraded to the newest revision; prints its path.",
+    )
+    rev.add_argument("-m", "--message", required=True, metavar="MSG",
+                     help="what changed (the revision's title and file name)")
+    rev.add_argument("--url", metavar="URL",
+                     help="scratch store to compare against (default: a temporary SQLite file)")
+    return parser
+
+
+def _main(argv: Sequence[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        if args.url is not None:
+            path = new_revision(args.message, url=args.url)
+        else:
+            with tempfile.TemporaryDirectory(prefix="qcfit-revision-") as scratch:
+                url = f"sqlite:///{Path(scratch) / 'scratch.sqlite'}"
+                path = new_revision(args.message, url=url)
+    except QcfitError as exc:
+        print(f"Error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    print(f"wrote {path}")
+    print("review it before committing (batch mode for changed tables, portable defaults)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(_main())

@@ -6,6 +6,7 @@ import atexit
 import dataclasses
 import datetime as dt
 import functools
+import json
 import shutil
 import subprocess
 import sys
@@ -150,6 +151,57 @@ def test_failed_init_leaves_the_store_as_it_was(
     assert snapshot(store_engine) == before
 
 
+def _baseline_rows(engine: sa.Engine) -> list[tuple]:
+    with read_tx(engine) as conn:
+        rows = conn.execute(
+            sa.select(s.baseline_version.c.name, s.baseline_version.c.content_hash,
+                      s.baseline_version.c.first_seen_utc, s.baseline_version.c.os_user)
+            .order_by(s.baseline_version.c.id)
+        ).all()
+    return [(r.name, r.content_hash, from_utc_naive(r.first_seen_utc), r.os_user) for r in rows]
+
+
+def test_init_records_the_baseline_versions(
+    store_engine: sa.Engine, tmp_path: Path, write_config, plant_config_text: str
+) -> None:
+    config = load_config(write_config(tmp_path, plant_config_text))
+    (plant,) = config.baselines
+    first = init_store(store_engine, config, os_user="qa-lead", now=NOW)
+    assert _baseline_rows(store_engine) == [("plant", plant.content_hash, NOW, "qa-lead")]
+    assert dict(first.baseline_versions) == {plant.content_hash: 1}
+    assert first.baseline_versions_new == 1
+    # a new content of the baseline is a new version, first seen at the init that met it
+    text = edited(plant_config_text, "rate = 0.012", "rate = 0.015")
+    changed = load_config(write_config(tmp_path, text, "changed.toml"))
+    (newer,) = changed.baselines
+    again = init_store(store_engine, changed, os_user="qa", now=LATER)
+    assert again.changed and again.baseline_versions_new == 1
+    assert not again.reference.changed
+    assert _baseline_rows(store_engine) == [
+        ("plant", plant.content_hash, NOW, "qa-lead"),
+        ("plant", newer.content_hash, LATER, "qa"),
+    ]
+    # the first content again: known, nothing recorded, and the config text is known too
+    back = init_store(store_engine, config, os_user="qa", now=LATER + dt.timedelta(days=1))
+    assert dict(back.baseline_versions) == {plant.content_hash: 1}
+    assert back.baseline_versions_new == 0 and not back.changed
+    assert len(_baseline_rows(store_engine)) == 2
+
+
+def test_failed_baseline_record_rolls_back_the_whole_init(
+    store_engine: sa.Engine, config_path: Path
+) -> None:
+    # Injected failure in the baseline step (content_hash NOT NULL): schema, lines,
+    # categories and the config version made before it in the same transaction go too.
+    config = load_config(config_path)
+    broken = dataclasses.replace(
+        config, baselines=(dataclasses.replace(config.baselines[0], content_hash=None),)
+    )
+    with pytest.raises(StoreError, match="constraint violated"):
+        init_store(store_engine, broken, now=NOW)
+    assert snapshot(store_engine) == {}
+
+
 def test_record_config_version_needs_an_aware_time(
     migrated_engine: sa.Engine, config_path: Path
 ) -> None:
@@ -181,6 +233,18 @@ def test_cli_init_reports_then_is_a_no_op(config_path: Path) -> None:
         "config: recorded as version 1",
     ]
     assert store.is_file()
+    # init recorded the baseline, at the time it recorded the config: "first seen" is the
+    # init, not a later listing
+    engine = make_engine(f"sqlite:///{store}")
+    with read_tx(engine) as conn:
+        config_seen = conn.execute(sa.select(s.config_version.c.first_seen_utc)).scalar_one()
+    ((name, _, seen, _),) = _baseline_rows(engine)
+    engine.dispose()
+    assert (name, seen) == ("plant", from_utc_naive(config_seen))
+    listed = invoke("--config", str(config_path), "baseline", "list", "--format", "json")
+    assert listed.exit_code == 0, listed.output
+    assert [dt.datetime.fromisoformat(r["first_seen_utc"]) for r in json.loads(listed.stdout)] == [
+        seen]
     second = invoke("--config", str(config_path), "init")
     assert second.exit_code == 0, second.output
     assert second.stdout.splitlines()[1:] == [

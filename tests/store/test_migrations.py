@@ -436,3 +436,53 @@ def test_new_revision_writes_the_next_script(tmp_path: Path) -> None:
     engine = make_engine(f"sqlite:///{tmp_path / 'store.sqlite'}")
     assert upgrade_store(engine, migrations=folder).to_revision == "0002"
     engine.dispose()
+
+
+def _source_copy(tmp_path: Path) -> Path:
+    """A copy of the source tree (package, migrations, pyproject.toml): ``python -m`` run in
+    it imports the copy, whose migrations folder is the one beside it."""
+    root = tmp_path / "src"
+    skip = shutil.ignore_patterns("__pycache__")
+    shutil.copytree(REPO / "qcfit", root / "qcfit", ignore=skip)
+    shutil.copytree(REPO / "migrations", root / "migrations", ignore=skip)
+    shutil.copy2(REPO / "pyproject.toml", root / "pyproject.toml")
+    return root
+
+
+def _run_module(cwd: Path, *args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-m", "qcfit.store.migrate", *args],
+        cwd=cwd, capture_output=True, text=True, timeout=120, check=False,
+    )
+
+
+def test_documented_revision_command_writes_into_the_tree_it_runs_from(tmp_path: Path) -> None:
+    # The command DEVELOPERS.md gives, word for word, run in a copy of the source tree.
+    shipped = sorted(p.name for p in (REPO / "migrations" / "versions").glob("*.py"))
+    root = _source_copy(tmp_path)
+    done = _run_module(root, "revision", "-m", "what changed")
+    assert done.returncode == 0, done.stderr
+    new = root / "migrations" / "versions" / "0002_what_changed.py"
+    assert f"wrote {new}" in done.stdout
+    body = new.read_text(encoding="utf-8")
+    assert "what changed" in body and "down_revision: str | Sequence[str] | None = '0001'" in body
+    # schema.py and the migrations agree, so the revision has nothing to do
+    assert "op." not in body.split("def upgrade() -> None:")[1].split("def downgrade")[0]
+    assert sorted(p.name for p in (REPO / "migrations" / "versions").glob("*.py")) == shipped
+    assert not list(root.glob("*.sqlite"))  # the default scratch store is a temporary file
+
+
+def test_revision_command_with_url_and_its_errors(tmp_path: Path) -> None:
+    root = _source_copy(tmp_path)
+    scratch = tmp_path / "scratch.sqlite"
+    done = _run_module(root, "revision", "-m", "add a column", "--url", f"sqlite:///{scratch}")
+    assert done.returncode == 0, done.stderr
+    assert (root / "migrations" / "versions" / "0002_add_a_column.py").is_file()
+    assert scratch.is_file()  # the named scratch store is kept, at head
+    missing = _run_module(root, "revision")
+    assert missing.returncode == 2 and "-m/--message" in missing.stderr
+    bad = _run_module(root, "revision", "-m", "x", "--url", f"sqlite:///{tmp_path}/no/such.db")
+    assert bad.returncode == 1
+    assert bad.stderr.startswith("Error: ") and "does not exist" in bad.stderr
+    assert sorted(p.name for p in (root / "migrations" / "versions").glob("*.py")) == [
+        "0001_initial.py", "0002_add_a_column.py"]
