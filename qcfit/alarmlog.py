@@ -9,7 +9,9 @@
 * :func:`list_alarms` and :func:`alarm_story` read.
 
 States: open -> acknowledged -> cleared (open -> cleared directly is allowed; a watch that
-escalates to an alarm re-opens an acknowledged alarm so it is seen again).
+escalates to an alarm in a new shift re-opens an acknowledged alarm so it is seen again).
+Re-evaluating a shift an alarm already covers updates figures only: it never undoes an
+acknowledgement or a clearing.
 """
 
 from __future__ import annotations
@@ -182,9 +184,19 @@ def view(row: Mapping[str, Any]) -> AlarmView:
     )
 
 
-def _active(row: Mapping[str, Any]) -> ActiveAlarm:
+def _naive(value: Any) -> dt.datetime | None:
+    if value is None or isinstance(value, dt.datetime):
+        return value
+    return dt.datetime.fromisoformat(str(value))
+
+
+def _active(row: Mapping[str, Any], judged_start: dt.datetime | None = None) -> ActiveAlarm:
+    """The policy's view of an alarm row; ``judged_start`` (naive UTC) is the start of the
+    shift being judged, for the alarm's position relative to it."""
     details = row.get("details") or {}
     first = _shift_id(row.get("shift_date"), row.get("shift_name")) or ""
+    first_start = _naive(row.get("shift_start_utc"))
+    last_start = _naive(row.get("last_shift_start_utc"))
     return ActiveAlarm(
         id=int(row["id"]),
         kind=str(row["kind"]),
@@ -195,13 +207,20 @@ def _active(row: Mapping[str, Any]) -> ActiveAlarm:
         baseline_version_id=row["baseline_version_id"],
         shifts=tuple(details.get("shifts") or ([first] if first else [])),
         in_control_shifts=tuple(details.get("in_control_shifts") or ()),
+        raised_after=(judged_start is not None and first_start is not None
+                      and first_start > judged_start),
+        crossed_after=(judged_start is not None and last_start is not None
+                       and last_start > judged_start),
     )
 
 
 def active_alarms(conn: Any, shift_row_id: int | None = None) -> list[ActiveAlarm]:
-    """Alarms open or acknowledged now, plus (when given) every alarm raised by that shift."""
-    rows = sql.select_alarms(conn, states=ACTIVE_STATES, first_shift_id=shift_row_id)
-    return [_active(r) for r in rows]
+    """Alarms open or acknowledged now; when a shift is given, also every alarm (any state)
+    raised by it or spanning it, each marked relative to it (raised or crossed later)."""
+    if shift_row_id is None:
+        return [_active(r) for r in sql.select_alarms(conn, states=ACTIVE_STATES)]
+    rows, start = sql.alarms_around_shift(conn, shift_row_id)
+    return [_active(r, start) for r in rows]
 
 
 # ---------------------------------------------------------------------------------------
@@ -239,8 +258,10 @@ def _details(d: AlarmDecision, old: Mapping[str, Any] | None = None) -> dict[str
 
 def _event(conn: Any, alarm_id: int, action: str, *, now_utc: dt.datetime, shift_row: int | None,
            from_state: str | None, to_state: str, note: str | None, by: str = SYSTEM_USER) -> None:
+    # one event per alarm and shift: re-applying a shift (or updating by the shift that
+    # raised the alarm) adds none
     if shift_row is not None and action in (RAISE, UPDATE) and sql.has_event(
-            conn, alarm_id, action, shift_row):
+            conn, alarm_id, (RAISE, UPDATE), shift_row):
         return
     sql.insert_event(conn, {"alarm_id": alarm_id, "at_utc": now_utc, "action": action, "by": by,
                             "note": note, "from_state": from_state, "to_state": to_state,
@@ -324,7 +345,9 @@ def _update(ctx: tuple, d: AlarmDecision) -> int:
     if crossing and _is_latest(row, start):
         values |= _figures(d) | {"last_shift_id": shift_row}
     state = row["state"]
-    escalated = (crossing and state == ACKNOWLEDGED
+    # a re-evaluation of a shift the alarm already covers never undoes a person's decision
+    seen = d.shift_id in ((row.get("details") or {}).get("shifts") or ())
+    escalated = (crossing and state == ACKNOWLEDGED and not seen
                  and SEVERITY_RANK[d.severity] > SEVERITY_RANK[row["severity"]])
     if escalated:
         values["state"] = OPEN

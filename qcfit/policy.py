@@ -17,9 +17,15 @@ Rules (the ``[thresholds]`` keys in brackets):
 4. **Persistence.** A new alarm is raised only when k of the last m shifts crossed
    [persistence_k, persistence_m]; the history of earlier shifts is passed in.
 5. **One alarm per line and kind.** An alarm still open (or acknowledged) for the same line and
-   kind is updated (shifts covered, latest figures) instead of raising a new one.
-6. **Auto-clear** after [auto_clear_after] in-control shifts in a row for that line and kind.
-7. **Faults** (a test that raised, a failed evaluation) become ``service-fault`` alarms.
+   kind is updated (shifts covered, latest figures) instead of raising a new one. When shift s
+   is judged, an alarm raised by a later shift does not exist yet and is ignored; an alarm (in
+   any state) whose covered shifts contain s is the one s updates, so re-evaluating a shift
+   never raises a second alarm for it.
+6. **Auto-clear** after [auto_clear_after] in-control shifts in a row for that line and kind;
+   only shifts after the alarm's last crossing shift count.
+7. **People's decisions stand.** Re-evaluating a shift the alarm already covers updates its
+   figures and shift list only: an acknowledgement or a clearing is never undone.
+8. **Faults** (a test that raised, a failed evaluation) become ``service-fault`` alarms.
 
 Shift lists (not counters) drive the counts, so applying the same shift twice changes nothing.
 """
@@ -69,7 +75,10 @@ class ActiveAlarm:
     """An alarm in the log that this shift may update or clear.
 
     ``shifts`` are the shift ids it covers (the first raised it); ``in_control_shifts`` the
-    shifts in a row since the last crossing that were in control.
+    shifts in a row since the last crossing that were in control. Relative to the shift being
+    judged: ``raised_after`` when the alarm was raised by a later shift (it does not exist yet
+    at the judged shift), ``crossed_after`` when it covers a crossing shift later than the
+    judged one (so the judged shift cannot count toward its auto-clear).
     """
 
     id: int
@@ -81,6 +90,8 @@ class ActiveAlarm:
     baseline_version_id: int | None
     shifts: tuple[str, ...]
     in_control_shifts: tuple[str, ...] = ()
+    raised_after: bool = False
+    crossed_after: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -291,8 +302,9 @@ def decide(
 ) -> PolicyResult:
     """Judge one shift's findings and decide what happens to each alarm.
 
-    ``active``: alarms open or acknowledged now, plus any alarm this shift raised before (so a
-    re-evaluation updates or withdraws it). ``history[(line, kind)]``: whether each earlier
+    ``active``: alarms open or acknowledged now, plus any alarm (in any state) that this shift
+    raised or that covers it (so a re-evaluation updates or withdraws it instead of raising
+    another), with ``raised_after`` / ``crossed_after`` set relative to this shift. ``history[(line, kind)]``: whether each earlier
     shift crossed, oldest first (only the last m - 1 are used). ``names``: display names of
     categories for the words.
     """
@@ -331,13 +343,14 @@ def _worst(found: Sequence[Finding]) -> Finding | None:
 def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names, vs_rest):
     line, kind = key
     worst = _worst(found)
-    live = [a for a in alarms if a.state in ACTIVE_STATES]
-    mine = [a for a in alarms if a.first_shift == shift_id and a.state not in ACTIVE_STATES]
+    alarms = [a for a in alarms if not a.raised_after]  # not raised yet at this shift
+    covering = [a for a in alarms if shift_id in a.shifts or a.first_shift == shift_id]
+    live = [a for a in alarms if a.state in ACTIVE_STATES and a not in covering]
     if worst is not None:
         if worst.verdict == ev.FAULT and worst.severity is None:
             worst = dataclasses.replace(worst, severity=ALARM)
         figs = _figures(worst, names, vs_rest if kind == ev.KIND_BETWEEN else ())
-        target = (live or mine or [None])[0]
+        target = (covering or live or [None])[0]
         if target is not None:
             return [_update(target, shift_id, figs, kind, line)]
         # a sequential chart already accumulates evidence across shifts: no k-of-m rule on top
@@ -348,15 +361,18 @@ def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names,
                                        f"the last {thresholds.persistence_m} shifts did", **figs)]
         return [AlarmDecision(action=RAISE, kind=kind, line=line, shift_id=shift_id,
                               shifts=(shift_id,), note=figs["summary"], **figs)]
-    return [d for a in live + mine if (d := _quiet(a, found, thresholds, shift_id, kind))]
+    return [d for a in covering + live if (d := _quiet(a, found, thresholds, shift_id, kind))]
 
 
 def _update(a: ActiveAlarm, shift_id: str, figs: dict[str, Any], kind: str, line) -> AlarmDecision:
     shifts = tuple(sorted(set(a.shifts) | {shift_id}))
     severity = max(a.severity, figs["severity"], key=lambda s: SEVERITY_RANK[s])
     figs = figs | {"severity": severity}
+    # a crossing ends the in-control run, unless the alarm already crossed later than this shift
+    keep = shift_id in a.shifts or a.crossed_after
     return AlarmDecision(action=UPDATE, kind=kind, line=line, shift_id=shift_id, alarm_id=a.id,
-                         shifts=shifts, in_control_shifts=(), note=figs["summary"], **figs)
+                         shifts=shifts, in_control_shifts=a.in_control_shifts if keep else (),
+                         note=figs["summary"], **figs)
 
 
 def _quiet(a: ActiveAlarm, found: Sequence[Finding], thresholds: Any, shift_id: str,
@@ -371,8 +387,8 @@ def _quiet(a: ActiveAlarm, found: Sequence[Finding], thresholds: Any, shift_id: 
                                  note=f"re-evaluation of {shift_id} no longer supports this alarm")
         return AlarmDecision(action=UPDATE, shifts=shifts, in_control_shifts=a.in_control_shifts,
                              note=f"re-evaluation of {shift_id} no longer crosses", **base)
-    if a.state not in ACTIVE_STATES or not _in_control(found, kind):
-        return None
+    if a.state not in ACTIVE_STATES or a.crossed_after or not _in_control(found, kind):
+        return None  # only shifts after the last crossing count toward auto-clear
     streak = tuple(sorted(set(a.in_control_shifts) | {shift_id}))
     if len(streak) >= thresholds.auto_clear_after:
         return AlarmDecision(action=AUTO_CLEAR, shifts=a.shifts, in_control_shifts=streak, **base,

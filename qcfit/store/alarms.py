@@ -89,6 +89,20 @@ def select_alarms(
     return [dict(r) for r in rows]
 
 
+def alarms_around_shift(conn: Connection, shift_id: int) -> tuple[list[dict[str, Any]],
+                                                                  dt.datetime | None]:
+    """Alarms open or acknowledged, plus every alarm (any state) raised by shift ``shift_id``
+    or spanning it (first shift start <= its start <= last shift start); and that shift's
+    start (naive UTC, None when the shift row is missing)."""
+    start = conn.execute(select(shift.c.start_utc).where(shift.c.id == shift_id)).scalar()
+    conds = [alarm.c.state.in_(["open", "acknowledged"]), alarm.c.first_shift_id == shift_id]
+    if start is not None:
+        conds.append(and_(_first.c.start_utc <= start, _last.c.start_utc >= start))
+    rows = conn.execute(_alarm_select().where(or_(*conds))
+                        .order_by(alarm.c.opened_utc.desc(), alarm.c.id.desc())).mappings()
+    return [dict(r) for r in rows], start
+
+
 def insert_alarm(conn: Connection, values: Mapping[str, Any]) -> int:
     result = conn.execute(insert(alarm).values(**values))
     return int(result.inserted_primary_key[0])
@@ -115,11 +129,14 @@ def insert_event(conn: Connection, values: Mapping[str, Any]) -> int:
     return int(result.inserted_primary_key[0])
 
 
-def has_event(conn: Connection, alarm_id: int, action: str, shift_id: int | None) -> bool:
+def has_event(conn: Connection, alarm_id: int, action: str | Sequence[str],
+              shift_id: int | None) -> bool:
+    """Whether the alarm has an event of ``action`` (or any of several) for that shift."""
+    actions = [action] if isinstance(action, str) else list(action)
     row = conn.execute(
         select(alarm_event.c.id).where(
             alarm_event.c.alarm_id == alarm_id,
-            alarm_event.c.action == action,
+            alarm_event.c.action.in_(actions),
             alarm_event.c.shift_id == shift_id,
         ).limit(1)
     ).first()
