@@ -67,6 +67,8 @@ import decimal
 import hashlib
 import io
 import logging
+import os
+import tempfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -363,12 +365,30 @@ def _write_rejects(path: Path, table: RawTable, bad: Sequence[BadRow], *, row_nu
         text = raw.get(b.line_no + (1 if row_numbers else 0), "")
         writer.writerow([b.line_no, spreadsheet_safe(b.reason), spreadsheet_safe(text)])
     try:
-        path.write_text(buf.getvalue(), encoding="utf-8")
+        _write_atomically(path, buf.getvalue())
     except OSError as exc:
         raise InvalidArgumentError(
             "--rejects", f"cannot write {path}: {exc.strerror or exc}"
         ) from exc
     return str(path)
+
+
+def _write_atomically(path: Path, text: str) -> None:
+    """Write ``text`` to a temporary file beside ``path``, then rename it over ``path``
+    (``os.replace``): a reader sees the old file or the whole new one, never a part. The new
+    file keeps the old one's permissions, else gets rw-r--r-- (``mkstemp`` makes rw-------)."""
+    mode = path.stat().st_mode & 0o777 if path.is_file() else 0o644
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        os.chmod(tmp, mode)
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as out:
+            out.write(text)
+            out.flush()
+            os.fsync(out.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
 
 
 def _note_text(notes: Sequence[str], rejects: str | None) -> str | None:

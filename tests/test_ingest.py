@@ -5,12 +5,13 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import sqlite3
+import sys
 from zoneinfo import ZoneInfo
 
 import numpy as np
 import pytest
 
-from qcfit.errors import InputFileError
+from qcfit.errors import InputFileError, InvalidArgumentError
 from qcfit.ingest import load_counts_file, load_events_file
 from qcfit.store.defects import read_counts, shift_table
 from qcfit.store.engine import read_tx
@@ -267,6 +268,43 @@ def test_skip_bad_loads_good_rows_and_writes_rejects(plant_store, tmp_path):
     assert query(plant_store, "SELECT note FROM load") == [
         (f"rejects: {tmp_path / 'e.rejects.csv'}",)
     ]
+
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="POSIX rename semantics (open file kept)")
+def test_rejects_file_is_replaced_whole_not_rewritten_in_place(plant_store, tmp_path):
+    folder = tmp_path / "in"
+    folder.mkdir()
+    # A reader that opened the previous rejects file keeps reading all of it (the new file is
+    # renamed over the name, not written into the old one), and no temporary file is left.
+    target = folder / "e.rejects.csv"
+    target.write_text("line_no,reason,raw\n9,old reason,old row\n", encoding="utf-8")
+    target.chmod(0o640)
+    path = write(folder, "e.csv", EVENTS + "2026-01-05 09:00,L9,SCR,1\n")
+    with target.open(encoding="utf-8") as reader:
+        report = load_events_file(
+            plant_store.engine, plant_store.config, path, now=NOW, skip_bad=True, **WHO
+        )
+        assert reader.read() == "line_no,reason,raw\n9,old reason,old row\n"
+    assert report.rejects_path == str(target)
+    assert target.read_text(encoding="utf-8").splitlines()[1].startswith("6,unknown line 'L9'")
+    assert target.stat().st_mode & 0o777 == 0o640  # the replaced file's permissions are kept
+    assert sorted(p.name for p in folder.iterdir()) == ["e.csv", "e.rejects.csv"]
+
+
+def test_rejects_file_that_cannot_be_written_leaves_nothing(plant_store, tmp_path):
+    folder = tmp_path / "in"
+    folder.mkdir()
+    before = plant_store.dump()
+    (folder / "e.rejects.csv").mkdir()  # the name is taken by a folder
+    (folder / "e.rejects.csv" / "keep").write_text("x", encoding="utf-8")
+    path = write(folder, "e.csv", EVENTS + "2026-01-05 09:00,L9,SCR,1\n")
+    with pytest.raises(InvalidArgumentError, match="--rejects: cannot write .*e.rejects.csv"):
+        load_events_file(
+            plant_store.engine, plant_store.config, path, now=NOW, skip_bad=True, **WHO
+        )
+    assert plant_store.dump() == before
+    assert sorted(p.name for p in folder.iterdir()) == ["e.csv", "e.rejects.csv"]
 
 
 def test_dst_nights_in_the_plant_zone(plant_store, tmp_path):
