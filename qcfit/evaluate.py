@@ -605,8 +605,12 @@ def _mode_for(expected: np.ndarray) -> str:
 
 def _large_reason(expected: np.ndarray) -> str:
     e = np.asarray(expected, dtype=float)
+    return _large_text(e.min(), (e < 5).mean())
+
+
+def _large_text(smallest: float, share_below_5: float) -> str:
     return (f"asymptotic chi-square: Cochran's rule holds (smallest expected count "
-            f"{e.min():.1f}, {100 * (e < 5).mean():.0f}% below 5)")
+            f"{smallest:.1f}, {100 * share_below_5:.0f}% below 5)")
 
 
 def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
@@ -621,7 +625,8 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
     rows_n = counts.sum(axis=1)
     pair_e = np.stack([np.outer(rows_n, share), np.outer(total - rows_n, share)], axis=1)
     small = (pair_e < 5.0).mean(axis=(1, 2))  # 2 x c' expected counts per line: Cochran's rule
-    pair_ok = (pair_e.min(axis=(1, 2)) >= 1.0) & (small <= 0.2)
+    low = pair_e.min(axis=(1, 2))
+    pair_ok = (low >= 1.0) & (small <= 0.2)
     big = None
     try:
         big = qstats.compare_each_to_rest(counts, statistic="pearson", pvalue="asymptotic",
@@ -635,20 +640,21 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
         def one(i: int = i) -> Finding:
             if big is not None and rows_n[i] > 0 and pair_ok[i]:
                 return _vs_rest_finding(table, counts, i, big, i, limits, float(powers),
-                                        method_reason=_large_reason(pair_e[i]))
+                                        method_reason=_large_text(low[i], small[i]), col=col)
             pair = np.stack([counts[i], col - counts[i]])
             res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
                                               seed=seed, **_mc_options(limits))
-            return _vs_rest_finding(table, counts, i, res, 0, limits, float(powers))
+            return _vs_rest_finding(table, counts, i, res, 0, limits, float(powers), col=col)
         out.append(_contained(KIND_VS_REST, line, None, one))
     return out
 
 
 def _vs_rest_finding(table: CountTable, counts: np.ndarray, i: int, res: Any, r: int,
-                     limits: Any, power: float, method_reason: str | None = None) -> Finding:
+                     limits: Any, power: float, method_reason: str | None = None,
+                     col: np.ndarray | None = None) -> Finding:
     line = table.lines[i]
     mine = counts[i]
-    col = counts.sum(axis=0)
+    col = counts.sum(axis=0) if col is None else col
     n_mine = int(mine.sum())
     if not bool(res.tested[r]):
         return Finding(kind=KIND_VS_REST, line=line, verdict=NOT_TESTED, n=n_mine,
