@@ -1013,8 +1013,10 @@ def canonical_baseline_toml(name: str, table: Mapping[str, Any]) -> str:
     return tomlkit.dumps(doc)
 
 
-def _parse_baseline(col: _Collector, name: str, raw: Any, cfg: dict[str, Any]
-                    ) -> BaselineSpec | None:
+def _parse_baseline(col: _Collector, name: str, raw: Any, cfg: dict[str, Any],
+                    slots: list[tuple[str, tuple[str, ...], dt.date]]) -> BaselineSpec | None:
+    """The baseline, or None when it has problems; ``(name, lines, effective)`` is appended
+    to ``slots`` whenever those two parsed, so overlaps are reported beside other problems."""
     key = f"baseline.{name}"
     if not isinstance(raw, dict):
         col.add(key, f"must be a table: write each baseline as its own [baseline.NAME] table,"
@@ -1030,6 +1032,8 @@ def _parse_baseline(col: _Collector, name: str, raw: Any, cfg: dict[str, Any]
         effective = _parse_date(raw["effective"])
         if effective is None:
             col.add(f"{key}.effective", f"{_show(raw['effective'])} is not a date (write 2026-01-05)")
+    if lines is not None and effective is not None:
+        slots.append((name, lines, effective))
     _value(col, raw, "normalize", key, _boolean, False)
     shares, counts = _shares(col, raw, key, cfg["categories"])
     proportions = _normalised(col, raw, key, shares) if shares is not None else None
@@ -1050,26 +1054,30 @@ def _parse_baseline(col: _Collector, name: str, raw: Any, cfg: dict[str, Any]
     )
 
 
-def _check_overlaps(col: _Collector, specs: list[BaselineSpec]) -> None:
-    """Two baselines for the same line (or both "*") with the same effective date."""
+def _check_overlaps(col: _Collector, slots: list[tuple[str, tuple[str, ...], dt.date]]
+                    ) -> None:
+    """Two baselines for the same line (or both "*") with the same effective date; every
+    baseline whose lines and effective date parsed takes part, whatever else is wrong."""
     seen: dict[tuple[str, dt.date], str] = {}
-    for spec in specs:
-        for line in spec.lines:
-            slot = (line, spec.effective)
+    for name, lines, effective in slots:
+        for line in lines:
+            slot = (line, effective)
             if slot in seen:
                 what = "every line (\"*\")" if line == ALL_LINES else f"line {line}"
-                col.add(f"baseline.{spec.name}.effective",
-                        f"{spec.effective.isoformat()} is also the effective date of baseline."
+                col.add(f"baseline.{name}.effective",
+                        f"{effective.isoformat()} is also the effective date of baseline."
                         f"{seen[slot]} for {what}; give one of them another date")
             else:
-                seen[slot] = spec.name
+                seen[slot] = name
 
 
 def _parse_baselines(col: _Collector, mapping: Mapping, cfg: dict[str, Any]
                      ) -> tuple[BaselineSpec, ...]:
     table = _table(col, mapping, "baseline") or {}
-    specs = [s for n, raw in table.items() if (s := _parse_baseline(col, n, raw, cfg)) is not None]
-    _check_overlaps(col, specs)
+    slots: list[tuple[str, tuple[str, ...], dt.date]] = []
+    specs = [s for n, raw in table.items()
+             if (s := _parse_baseline(col, n, raw, cfg, slots)) is not None]
+    _check_overlaps(col, slots)
     return tuple(sorted(specs, key=lambda s: (s.effective, s.name)))
 
 

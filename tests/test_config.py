@@ -527,6 +527,25 @@ def test_overlapping_effective_dates_for_the_same_line_are_an_error():
     assert 'every line ("*")' in reasons(with_baselines(twice), "baseline.again.effective")[0]
 
 
+
+def test_overlap_is_reported_beside_the_baselines_other_problems():
+    # Every problem at once: both baselines also have errors of their own (a negative rate,
+    # an unknown category), and the shared line and date are still reported.
+    first = GLAZE.replace("rate = 0.012", "rate = -1")
+    other = (GLAZE.replace("glaze-lines", "l2-only").replace('["L1", "L2"]', '["L2", "L3"]')
+             .replace("SCR = 0.40", "XYZ = 0.40"))
+    found = {p.key: p.reason for p in problems_of(with_baselines(first + other))}
+    assert found["baseline.l2-only.effective"] == (
+        "2026-01-05 is also the effective date of baseline.glaze-lines for line L2; "
+        "give one of them another date")
+    assert "baseline.glaze-lines.rate" in found
+    assert any(k.startswith("baseline.l2-only.proportions") for k in found)
+    # a baseline whose lines did not parse takes no part (no guess at what it meant)
+    unknown_line = other.replace('["L2", "L3"]', '["L2", "L9"]')
+    keys = keys_of(with_baselines(first + unknown_line))
+    assert "baseline.l2-only.lines" in keys and "baseline.l2-only.effective" not in keys
+
+
 def test_explicit_and_star_on_one_date_or_one_line_on_two_dates_are_fine():
     star = GLAZE.replace("glaze-lines", "all").replace('["L1", "L2"]', '"*"')
     later = GLAZE.replace("glaze-lines", "glaze-2026b").replace("2026-01-05", "2026-03-01")
