@@ -80,8 +80,9 @@ PROPORTION_DECIMALS = 6  # shares in the TOML block; they sum to 1 exactly at th
 RATE_DIGITS = 4  # significant digits of the rate in the TOML block
 
 # Median in-control run length (shifts between false alarms) of a chart set for 370 when the
-# baseline mix is estimated from 10, 30 or 100 in-control shifts: figures from a simulation
-# quoted in qcfit issue 6 (a multinomial CUSUM, 60 Phase I replicates per size: rough).
+# baseline mix is estimated from 10, 30 or 100 in-control shifts: rough figures from a
+# simulation (a multinomial CUSUM, 60 Phase I replicates per size); they depend on the chart
+# and the line, and only show the direction and size of the effect.
 ARL_FIGURES: tuple[tuple[int, float], ...] = ((10, 275.0), (30, 324.0), (100, 361.0))
 ARL_FIGURES_TARGET = 370.0
 
@@ -646,9 +647,10 @@ def arl_warning(shifts: int) -> str:
     figures = ", ".join(f"{arl:.0f} with {m}" for m, arl in ARL_FIGURES)
     return (
         f"only {shifts} shift(s) in the fit: a baseline estimated from few shifts makes charts "
-        f"alarm more often than configured. In a simulation quoted in qcfit issue 6, a chart set "
-        f"for {ARL_FIGURES_TARGET:.0f} in-control shifts between false alarms gave a median of "
-        f"{figures} baseline shifts. Aim for at least {DEFAULT_MIN_SHIFTS} shifts."
+        f"alarm more often than configured. Rough figures from a simulation (they depend on the "
+        f"chart and the line): a chart set for {ARL_FIGURES_TARGET:.0f} in-control shifts between "
+        f"false alarms gave a median of {figures} baseline shifts. Aim for at least "
+        f"{DEFAULT_MIN_SHIFTS} shifts."
     )
 
 
