@@ -95,7 +95,7 @@ CHAIN_LOOKBACK = 5000
 #: (p0 of 8 categories, n ~ 200, ARL0 1480), at an eighth of the cost
 MARKOV_POINTS = 150
 #: CPU seconds one evaluation run may spend calibrating; later lines get conservative limits
-#: until a following run has filled the cache (the service start budget of issue 8)
+#: until a following run has filled the cache (keeps a service start within its time budget)
 CALIBRATION_BUDGET_S = 10.0
 CUSUM_CAP = 1.5  # CUSUM values carried on are held at most this multiple of their limit
 CALIBRATED = "calibrated"
