@@ -300,6 +300,8 @@ def _raise(ctx: tuple, d: AlarmDecision) -> tuple[int, bool]:
     conn, shift_row, _start, now_utc = ctx
     key = (shift_row or 0, d.line or "", d.kind, d.baseline_version_id or 0)
     existing = sql.find_by_key(conn, *key)
+    if existing is not None and shift_row is None and existing["state"] == CLEARED:
+        return _reopen(ctx, existing, d), True
     if existing is not None:  # the same shift applied again: refresh figures, keep the state
         sql.update_alarm(conn, existing["id"], _figures(d) | {
             "details": _details(d, existing.get("details")), "updated_utc": now_utc})
@@ -314,6 +316,19 @@ def _raise(ctx: tuple, d: AlarmDecision) -> tuple[int, bool]:
     _event(conn, alarm_id, RAISE, now_utc=now_utc, shift_row=shift_row, from_state=None,
            to_state=OPEN, note=d.summary)
     return alarm_id, True
+
+
+def _reopen(ctx: tuple, row: Mapping[str, Any], d: AlarmDecision) -> int:
+    """A new fault tied to no shift after the plant-wide one was cleared: such faults share one
+    key, so the cleared alarm is opened again (``opened`` becomes now; the history keeps the
+    earlier opening and clearing) and reads as new."""
+    conn, _shift_row, _start, now_utc = ctx
+    sql.update_alarm(conn, row["id"], _figures(d) | {
+        "state": OPEN, "shift_count": 1, "in_control_streak": 0, "details": _details(d),
+        "opened_utc": now_utc, "updated_utc": now_utc})
+    _event(conn, row["id"], RAISE, now_utc=now_utc, shift_row=None, from_state=CLEARED,
+           to_state=OPEN, note=f"raised again after it was cleared: {d.summary}")
+    return int(row["id"])
 
 
 def _load(conn: Any, alarm_id: int | None) -> dict[str, Any]:
@@ -387,7 +402,8 @@ SERVICE_LABEL = "service"  # stands for the shift in the shift list of a fault w
 def record_service_fault(engine: Any, reason: str, *, now: dt.datetime) -> int:
     """A service fault not tied to a shift (for example an invalid new config): one plant-wide
     ``service-fault`` alarm, updated if one is open. Returns its id. The alarm clears itself
-    after ``auto_clear_after`` shifts evaluated without fault, or by hand."""
+    after ``auto_clear_after`` shifts evaluated without fault, or by hand; a fault after that
+    opens the same alarm again (state ``open``, an ``open`` event in its history)."""
     from qcfit.policy import fault_decisions
 
     with write_tx(engine) as conn:

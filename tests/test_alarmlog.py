@@ -191,3 +191,18 @@ def test_service_fault_without_a_shift_is_raised_once_then_updated(store):
     assert (a.kind, a.line, a.state, a.shift_id) == ("service-fault", None, "open", None)
     assert a.summary == "service: config plant.toml: still invalid"
     assert [e.action for e in alarmlog.alarm_story(engine, first).events] == ["open", "update"]
+
+
+def test_a_service_fault_after_a_cleared_one_is_open_again(store):
+    # faults tied to no shift share one key: the cleared alarm must be opened again, visibly
+    engine, _, _ = store
+    first = alarmlog.record_service_fault(engine, "config plant.toml: bad key", now=NOW)
+    alarmlog.clear(engine, first, by="Dana", note="config fixed", now=NOW + dt.timedelta(hours=1))
+    later = NOW + dt.timedelta(hours=2)
+    second = alarmlog.record_service_fault(engine, "store locked for 30 s", now=later)
+    a = alarmlog.get_alarm(engine, second)
+    assert (a.state, a.summary, a.opened) == ("open", "service: store locked for 30 s", later)
+    assert [x.id for x in alarmlog.list_alarms(engine, open_only=True)] == [second]
+    events = alarmlog.alarm_story(engine, second).events
+    assert [(e.action, e.from_state, e.to_state) for e in events] == [
+        ("open", None, "open"), ("clear", "open", "cleared"), ("open", "cleared", "open")]
