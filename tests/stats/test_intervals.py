@@ -14,9 +14,10 @@ SG_COUNTS = [56, 72, 73, 59, 62, 87, 58]
 
 
 def test_sison_glaz_example_one():
-    # Sison-Glaz intervals from R MultinomialCI, stored in statsmodels
-    # results_multinomial_proportions.py (reference-cases CI-1, SEEN); R and statsmodels
-    # differ by ~2e-5 in the upper bounds, so tolerance 2e-4.
+    # Sison-Glaz intervals of Sison & Glaz (1995) Example 1 from R MultinomialCI, as stored in
+    # statsmodels/stats/tests/results/results_multinomial_proportions.py; R and statsmodels
+    # multinomial_proportions_confint(method="sison-glaz") differ by ~2e-5 in the upper
+    # bounds, so tolerance 2e-4.
     r_values = [[0.07922912, 0.1643361], [0.11349036, 0.1985973], [0.11563169, 0.2007386],
                 [0.0856531, 0.1707601], [0.09207709, 0.177184], [0.14561028, 0.2307172],
                 [0.08351178, 0.1686187]]
@@ -28,8 +29,9 @@ def test_sison_glaz_example_one():
 
 
 def test_goodman_intervals_printed_by_sison_and_glaz():
-    # Goodman intervals as printed in the Sison & Glaz (1995) paper to 3 dp (stored in
-    # statsmodels results, reference-cases CI-1), and statsmodels values to 5e-8.
+    # Goodman intervals as printed in Sison & Glaz (1995), JASA 90:366-369, Example 1, to 3 dp
+    # (also stored in statsmodels' results_multinomial_proportions.py), and statsmodels
+    # multinomial_proportions_confint(counts, 0.05, "goodman") values to 5e-8.
     paper = [[0.085, 0.166], [0.115, 0.204], [0.116, 0.207], [0.091, 0.173], [0.096, 0.181],
              [0.143, 0.239], [0.089, 0.171]]
     ci = multinomial_intervals(SG_COUNTS, 0.95, method="goodman")
@@ -39,7 +41,8 @@ def test_goodman_intervals_printed_by_sison_and_glaz():
 
 
 def test_goodman_matches_r_coinmind():
-    # R CoinMinD GM(y, 0.05) example output, y = (44, 55, 43, 32, 67, 78) (CI-4, SEEN).
+    # R package CoinMinD, help page of GM (Goodman), example output of GM(y, 0.05) for
+    # y = (44, 55, 43, 32, 67, 78).
     ci = multinomial_intervals([44, 55, 43, 32, 67, 78], 0.95, method="goodman")
     np.testing.assert_allclose(ci[:, 0], [0.09468368, 0.12376893, 0.09208527, 0.06412671,
                                           0.15637944, 0.18692732], atol=5e-8)
@@ -48,8 +51,9 @@ def test_goodman_matches_r_coinmind():
 
 
 def test_zero_cell_lower_bound_is_exactly_zero():
-    # reference-cases CI-6 (COMPUTED-ONLY): zero-cell interval Goodman [0, 0.01799112],
-    # statsmodels Sison-Glaz [0, 0.04810998].
+    # No published value: statsmodels multinomial_proportions_confint(counts, 0.05, method)
+    # gives the zero cell Goodman [0, 0.01799112] and Sison-Glaz [0, 0.04810998] (regression
+    # values from the reference library; the point is the exact 0 lower bound).
     counts = [56, 0, 73, 59, 62, 87, 58]
     g = multinomial_intervals(counts, 0.95, "goodman")
     s = multinomial_intervals(counts, 0.95, "sison-glaz")
