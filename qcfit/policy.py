@@ -182,9 +182,25 @@ def judge(findings: Sequence[Finding], method: str) -> tuple[Finding, ...]:
 def _judged(f: Finding, adjusted_p: float) -> Finding:
     sev = severity_of(f, adjusted_p)
     verdict = sev or (ev.TOO_LITTLE_DATA if f.verdict == ev.TOO_LITTLE_DATA else IN_CONTROL)
-    reason = f.reason if sev or verdict == ev.TOO_LITTLE_DATA else _in_control_reason(f, adjusted_p)
+    if sev:
+        reason = _crossing_reason(f, adjusted_p, sev)
+    else:
+        reason = f.reason if verdict == ev.TOO_LITTLE_DATA else _in_control_reason(f, adjusted_p)
     return dataclasses.replace(f, adjusted_pvalue=adjusted_p, severity=sev, verdict=verdict,
                                reason=reason)
+
+
+def _crossing_reason(f: Finding, adjusted_p: float, sev: str) -> str:
+    """Why a test crossed, e.g. ``adjusted p 0.0004 < 0.01 and w 0.412 >= 0.15: alarm``."""
+    level = f.alarm_level if sev == ALARM else f.watch_level
+    words = f"adjusted p {adjusted_p:.3g} < {level:g}"
+    if f.effect_floor is not None and f.effect_size is not None:
+        words += f" and {f.effect_name or 'effect'} {f.effect_size:.3f} >= {f.effect_floor:g}"
+    words += f": {sev}"
+    if f.verdict == ev.TOO_LITTLE_DATA and f.power is not None:
+        needed = f" < {f.power_needed:.2f}" if f.power_needed is not None else ""
+        words += f" (power {f.power:.2f}{needed}, yet the signal is clear)"
+    return words
 
 
 def _in_control_reason(f: Finding, adjusted_p: float) -> str:

@@ -117,6 +117,17 @@ def test_too_little_data_still_alarms_on_a_clear_signal():
     assert decide([f]).findings[0].verdict == policy.ALARM
 
 
+def test_a_crossing_says_why_it_crossed_not_the_power_words():
+    f = a_finding(p=1e-5, w=0.8, verdict=ev.TOO_LITTLE_DATA)
+    f = dataclasses.replace(f, reason="too little data to tell: power 0.74 < 0.80", power=0.74)
+    (g,) = decide([f]).findings
+    assert g.severity == policy.ALARM and "too little data" not in g.reason
+    assert g.reason == ("adjusted p 1e-05 < 0.01 and w 0.800 >= 0.1: alarm "
+                        "(power 0.74 < 0.80, yet the signal is clear)")
+    (g,) = decide([a_finding(p=0.03, w=0.3)]).findings
+    assert (g.severity, g.reason) == (policy.WATCH, "adjusted p 0.03 < 0.05 and w 0.300 >= 0.1: watch")
+
+
 def test_impossible_category_is_an_alarm():
     f = Finding(kind=ev.KIND_BASELINE, line="L2", verdict=ev.IMPOSSIBLE, reason="SCR (3)",
                 baseline_version_id=1,
