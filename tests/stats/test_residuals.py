@@ -26,8 +26,10 @@ def test_impossible_category_comes_first():
 
 
 def test_top_categories_from_a_table_row():
-    # Agresti (2007) p. 39 party x gender: the female row's largest adjusted residual is
-    # Republican, -5.32 (down), then Democrat +4.50 (up) (reference-cases AR-1).
+    # Agresti (2007), An Introduction to Categorical Data Analysis, 2nd ed., p. 39, party x
+    # gender: the female row's adjusted residuals are 4.502, 0.699, -5.316 (example output of
+    # the R package chisq.posthoc.test; Agresti's printed 4.50 / 0.70 / -5.32 from memory), so
+    # the largest is Republican, -5.32 (down), then Democrat +4.50 (up).
     g = compare_groups([[762, 327, 468], [484, 239, 477]])
     top = top_categories(g.adjusted_residuals[0], codes=["Dem", "Ind", "Rep"], limit=5)
     assert [(t.code, t.direction) for t in top] == [("Rep", "down"), ("Dem", "up")]
