@@ -272,3 +272,30 @@ def test_rate_words():
 def test_unknown_multiple_testing_method_is_refused():
     with pytest.raises(ValueError, match="multiple_testing"):
         policy.adjust([0.1, 0.2], "bonferroni")
+
+
+# --------------------------------------------------------------------------- re-evaluation
+
+
+def test_an_alarm_raised_by_a_later_shift_is_ignored():
+    # judging 2026-01-06_A again: an alarm raised on 2026-01-08_B does not exist yet there
+    later = active(first_shift="2026-01-08_B", shifts=("2026-01-08_B",), raised_after=True,
+                   crossed_after=True, in_control_shifts=("2026-01-09_A", "2026-01-09_B"))
+    assert decide([a_finding(p=0.7)], Thresholds(auto_clear_after=3), active=[later]).decisions == ()
+    (d,) = decide([a_finding(p=1e-5)], active=[later]).decisions
+    assert d.action == policy.RAISE and d.alarm_id is None
+
+
+def test_a_crossing_shift_reuses_the_alarm_that_covers_it_whatever_its_state():
+    for state in (policy.CLEARED, policy.ACKNOWLEDGED):
+        covering = active(state=state, shifts=("2026-01-05_C", "2026-01-06_A"),
+                          in_control_shifts=("2026-01-06_B",), crossed_after=False)
+        (d,) = decide([a_finding(p=1e-5)], active=[covering]).decisions
+        assert (d.action, d.alarm_id) == (policy.UPDATE, 7)
+        assert d.shifts == covering.shifts and d.in_control_shifts == ("2026-01-06_B",)
+
+
+def test_in_control_before_the_last_crossing_does_not_count_toward_auto_clear():
+    a = active(shifts=("2026-01-05_C", "2026-01-06_B"), crossed_after=True,
+               in_control_shifts=("2026-01-06_C", "2026-01-07_A"))
+    assert decide([a_finding(p=0.7)], Thresholds(auto_clear_after=3), active=[a]).decisions == ()
