@@ -423,6 +423,9 @@ def line_finding(plan: LinePlan, ls: LineStep, lim: LineLimits, chain: Sequence[
     details = {"charts": charts, "t": int(st.t[0]), "limits_kind": lim.kind,
                "calibration": lim.key, "n_level": lim.n_level, "started": ls.started,
                "skipped_concerns": list(plan.skipped)}
+    if not ls.reports and not ls.n:  # no defects: the charts learn nothing about the mix
+        return ev.Finding(verdict=ev.NOT_TESTED, reason="not tested: no defects this shift",
+                          details=details, **common)
     if not ls.reports:
         top = max(ratios, key=lambda c: ratios[c] if math.isfinite(ratios[c]) else -1.0)
         share = ratios[top] if math.isfinite(ratios[top]) else 0.0
