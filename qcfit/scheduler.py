@@ -2,9 +2,11 @@
 
 One catch-up (:meth:`Service.catch_up`) is the whole job body: pull new rows when the config
 has a ``[source]``, then :func:`qcfit.service.evaluate_due`, which evaluates every ended shift
-with no current ``ok`` evaluation. The store is the watermark, so a PC that was off, asleep,
-crashed or had its clock changed loses no shift and evaluates none twice; the scheduler only
-decides *when* to look.
+with no current ``ok`` evaluation, then (with a ``[report] folder``) the shift reports of the
+shifts it evaluated, after their commits (:func:`qcfit.report.write.write_after_evaluation`:
+the newest ``[report] keep``; a report that cannot be written is logged and never fails the
+catch-up). The store is the watermark, so a PC that was off, asleep, crashed or had its clock
+changed loses no shift and evaluates none twice; the scheduler only decides *when* to look.
 
 Scheduling (APScheduler 3.x ``BackgroundScheduler`` in the plant time zone, memory job
 store rebuilt from the config at each start and reload, job defaults set explicitly:
@@ -33,11 +35,12 @@ waiting for the job in flight. This module and the CLI are the only places that 
 Lean process (:attr:`Options.isolate`, what ``qcfit serve`` runs on POSIX): ``qcfit serve``
 replaces itself (``exec``, same pid) with ``python -m qcfit.scheduler serve``, which never
 imports the statistics stack. A catch-up with shifts due starts ``python -m qcfit.scheduler
-catch-up``: it evaluates, logs each alarm change, and sends message lines (``@qcfit {json}``)
-back on stdout; the service re-logs the child's lines (it stays the only writer of the log
-file) and sends the notifications. SIGTERM is passed on to the child, which stops after the
-write transaction in flight; the kernel kills the child if the service dies (Linux
-``PR_SET_PDEATHSIG``). ``qcfit serve --once`` and Windows evaluate in-process.
+catch-up``: it evaluates, logs each alarm change, writes the shift reports (where the
+evaluation ran: the lean process never imports matplotlib either) and sends message lines
+(``@qcfit {json}``) back on stdout; the service re-logs the child's lines (it stays the only
+writer of the log file) and sends the notifications. SIGTERM is passed on to the child, which
+stops after the write transaction in flight; the kernel kills the child if the service dies
+(Linux ``PR_SET_PDEATHSIG``). ``qcfit serve --once`` and Windows evaluate in-process.
 """
 
 from __future__ import annotations
@@ -339,6 +342,7 @@ class Service:
                     log.info("stopping: catch-up ended after %d shift(s)", len(done))
                 self.evaluated += len(done)
                 self._after(done, config)
+                self._reports(done, config, now)
                 return done
             finally:
                 self._status = "idle"
@@ -476,6 +480,24 @@ class Service:
                      len(done), sum(1 for s in done if not s.ok),
                      sum(len(s.opened) for s in done))
         self.announce(config)
+
+    def _reports(self, done: list[service.EvaluationSummary], config: Config,
+                 now: dt.datetime) -> None:
+        """The shift reports of this catch-up's committed ``ok`` evaluations, written here,
+        in the process that evaluated (``[report] folder``; the newest ``keep``). A report
+        that cannot be written is logged; the evaluations stay committed."""
+        ids = [s.shift_id for s in done if s.ok]
+        if not ids or not config.report.folder:
+            return
+        try:
+            from qcfit.report.write import write_after_evaluation
+
+            written = write_after_evaluation(self.engine, config, ids, now=now)
+        except Exception as exc:  # a report never fails the catch-up
+            log.error("shift reports not written: %s: %s", type(exc).__name__, exc)
+            return
+        if written:
+            log.info("%d shift report(s) written to %s", len(written), written[-1].parent)
 
     def announce(self, config: Config | None = None) -> int:
         """One log line per alarm change the service made since the last call (they are

@@ -6,9 +6,9 @@ then deletes the oldest reports there beyond ``[report] keep``. A file is writte
 temporary name in the same folder, flushed to disk and renamed over the target, so a reader
 (or a crash) never sees half a page.
 
-:func:`write_after_evaluation` is what the service calls after each evaluated shift: it does
-nothing when no folder is configured, and a failure is logged and returned as None, never
-raised (a report must not fail an evaluation that is already committed).
+:func:`write_after_evaluation` is what the service calls after each catch-up, with the shifts
+it evaluated: it does nothing when no folder is configured, and a failure is logged and
+skipped, never raised (a report must not fail an evaluation that is already committed).
 """
 
 from __future__ import annotations
