@@ -206,3 +206,46 @@ def test_a_service_fault_after_a_cleared_one_is_open_again(store):
     events = alarmlog.alarm_story(engine, second).events
     assert [(e.action, e.from_state, e.to_state) for e in events] == [
         ("open", None, "open"), ("clear", "open", "cleared"), ("open", "cleared", "open")]
+
+
+def test_a_shift_without_defects_is_not_tested_by_the_sequential_charts(tmp_path,
+                                                                         plant_config_text):
+    # a line with no defects says nothing about its mix: the chart finding is "not tested"
+    # (common practice, no source: the same words as the other tests with n = 0) and such a
+    # shift cannot count toward auto-clearing that line's alarms
+    import numpy as np
+    from test_service import LINES, healthy, load_counts
+
+    from qcfit import service
+    from qcfit.calendar import ShiftCalendar
+    from qcfit.store.evaluations import findings_of
+
+    config, engine = make_store(tmp_path, plant_config_text)
+    cal = ShiftCalendar.from_config(config)
+    shifts = [cal.from_id(i) for i in ("2026-01-06_A", "2026-01-06_B", "2026-01-06_C")]
+    rng = np.random.default_rng(5)
+    for i, s in enumerate(shifts):
+        counts = {ln: healthy(300, rng) for ln in LINES}
+        if i == 1:
+            counts["L1"] = [0] * 6
+        load_counts(engine, s, counts)
+    got = service.evaluate_shifts(engine, config, shifts, now=shifts[-1].end + dt.timedelta(hours=1))
+    with read_tx(engine) as conn:
+        seq = [{f["line"]: f for f in findings_of(conn, g.evaluation_id)
+                if f["kind"] == ev.KIND_SEQUENTIAL} for g in got]
+    assert seq[1]["L1"]["verdict"] == ev.NOT_TESTED
+    assert seq[1]["L1"]["details"]["reason"] == "not tested: no defects this shift"
+    assert seq[1]["L2"]["verdict"] == policy.IN_CONTROL
+    assert seq[0]["L1"]["verdict"] == seq[2]["L1"]["verdict"] == policy.IN_CONTROL
+    engine.dispose()
+    # ... and does not count toward auto-clearing the line's sequential alarm
+    from qcfit.config import Thresholds
+
+    a = policy.ActiveAlarm(id=1, kind=ev.KIND_SEQUENTIAL, line="L1", severity=policy.ALARM,
+                           state=policy.OPEN, first_shift="2026-01-05_B", baseline_version_id=None,
+                           shifts=("2026-01-05_B",), in_control_shifts=("2026-01-05_C",
+                                                                        "2026-01-06_A"))
+    f = ev.Finding(kind=ev.KIND_SEQUENTIAL, line="L1", verdict=ev.NOT_TESTED,
+                   reason="not tested: no defects this shift")
+    assert policy.decide([f], Thresholds(auto_clear_after=3), shift_id="2026-01-06_B",
+                         active=[a]).decisions == ()
