@@ -16,8 +16,9 @@ REL = dict(rel=1e-9)
 
 def test_mendel_dihybrid_pearson_and_g():
     # Mendel's round/wrinkled x yellow/green peas 315/108/101/32 against 9:3:3:1; textbooks
-    # print X^2 = 0.470, p = 0.925 (from memory, reference-cases GOF-2); oracle recomputed
-    # with scipy 1.17.1: X^2 = 0.470023980815, p = 0.925425895104, G = 0.475445238998.
+    # print X^2 = 0.470, p = 0.925 (from memory); oracle from scipy 1.17.1 chisquare and
+    # power_divergence(lambda_="log-likelihood"): X^2 = 0.470023980815, p = 0.925425895104,
+    # G = 0.475445238998.
     r = fit_to_baseline([315, 108, 101, 32], [9 / 16, 3 / 16, 3 / 16, 1 / 16], pvalue="auto")
     assert r.statistic == pytest.approx(0.470023980815, **REL)
     assert r.pvalue == pytest.approx(0.925425895104, **REL)
@@ -31,7 +32,8 @@ def test_mendel_dihybrid_pearson_and_g():
 
 def test_mendel_three_to_one_large_n():
     # Agresti, Categorical Data Analysis (2nd ed., 2002), sec. 1.5: 6022 yellow / 2001 green
-    # vs 3:1, X^2 = 0.015, P = 0.90 (printed values from memory; GOF-1 oracle from scipy).
+    # vs 3:1, X^2 = 0.015, P = 0.90 (printed values from memory); oracle: scipy.stats
+    # chisquare([6022, 2001], [6017.25, 2005.75]) and power_divergence for G.
     r = fit_to_baseline([6022, 2001], [0.75, 0.25])
     assert r.statistic == pytest.approx(0.0149985458474, **REL)
     assert r.pvalue == pytest.approx(0.902527951585, **REL)
@@ -42,7 +44,7 @@ def test_mendel_three_to_one_large_n():
 
 def test_weights_rescaled_only_when_asked():
     # R chisq.test(freq, p = pr, rescale.p = TRUE) output stored in statsmodels
-    # stats/tests/test_gof.py::test_chisquare (reference-cases GOF-4): X^2 = 2.084086388178453,
+    # stats/tests/test_gof.py::test_chisquare: X^2 = 2.084086388178453,
     # p = 0.72029651761105; alternative weights: 0.01492063492063492, p = 0.999972309849908.
     freq = [1048, 660, 510, 420, 362]
     r = fit_to_baseline(freq, [1020, 690, 510, 420, 360], normalize=True)
@@ -56,7 +58,7 @@ def test_weights_rescaled_only_when_asked():
 
 
 def test_scipy_docstring_examples():
-    # scipy 1.17.1 docstring of scipy.stats.chisquare (reference-cases GOF-7):
+    # scipy 1.17.1 docstring of scipy.stats.chisquare, its examples:
     # [16,18,16,14,12,12] uniform -> 2.0, p = 0.84914503608460956; against expected
     # [16,16,16,16,16,8] -> 3.5, p = 0.62338762774958223.
     r = fit_to_baseline([16, 18, 16, 14, 12, 12], np.full(6, 1 / 6))
@@ -70,7 +72,9 @@ def test_scipy_docstring_examples():
 def test_crossbill_g_test():
     # McDonald, Handbook of Biological Statistics (3rd ed., 2014), G-test of goodness of fit:
     # 1752 right- vs 1895 left-billed crossbills against 1:1; R (DescTools::GTest) G = 5.6085,
-    # p = 0.01787 (reference-cases G-1); scipy: G = 5.60851195653, p = 0.0178734348502.
+    # p = 0.01787 (R output in the R Companion to the Handbook, rcompanion.org, crossbill
+    # example); scipy power_divergence(lambda_="log-likelihood"): G = 5.60851195653,
+    # p = 0.0178734348502.
     g = fit_to_baseline([1752, 1895], [0.5, 0.5], statistic="g", pvalue="asymptotic")
     assert g.statistic == pytest.approx(5.60851195653, **REL)
     assert g.pvalue == pytest.approx(0.0178734348502, **REL)
@@ -95,16 +99,17 @@ def test_chi2_two_dof_tail_at_13_22():
 
 def test_cohens_w_for_a_known_alternative():
     # R pwr::ES.w1 help, Cohen (1988) Exercise 7.1: P0 = 1/4 each, P1 = (.375, .2083.. x3)
-    # -> w = 0.2886751 (reference-cases ES-1). Observed proportions equal to P1 (n = 24:
+    # -> w = 0.2886751 (the help page's example output). Observed proportions equal to P1 (n = 24:
     # 9/5/5/5) give sqrt(X^2/n) = w exactly.
     r = fit_to_baseline([9, 5, 5, 5], np.full(4, 0.25))
     assert r.effect_size == pytest.approx(0.2886751345948129, rel=1e-12)
 
 
 def test_sparse_exact_and_monte_carlo():
-    # Reference-cases EX-8 (COMPUTED-ONLY, exact enumeration; regression values): observed
-    # (6,4,3,4,3) vs (.50,.25,.15,.07,.03): X^2 = 16.22857143, asymptotic p = 0.002727301356,
-    # exact p = 0.007044506581; G = 10.14014857, exact p(G) = 0.03936573145.
+    # No published value (invented sparse shift): observed (6,4,3,4,3) vs
+    # (.50,.25,.15,.07,.03): X^2 = 16.22857143, asymptotic p = 0.002727301356 (scipy.stats
+    # chisquare); exact p = 0.007044506581 and G = 10.14014857, exact p(G) = 0.03936573145,
+    # from summing scipy.stats.multinomial.pmf over all 10,626 outcomes with n = 20.
     obs, p0 = [6, 4, 3, 4, 3], [0.5, 0.25, 0.15, 0.07, 0.03]
     a = fit_to_baseline(obs, p0, pvalue="asymptotic")
     assert a.pvalue == pytest.approx(0.002727301356, rel=1e-9)
@@ -121,9 +126,10 @@ def test_sparse_exact_and_monte_carlo():
 
 
 def test_r_sparse_example_asymptotic_matches_exact_table():
-    # Reference-cases EX-7 (COMPUTED-ONLY): (89,37,30,28,2) vs (.40,.20,.20,.19,.01):
-    # asymptotic p(X^2) = 0.215013095921, exact p(X^2) = 0.2099577502 (5.4e7 outcomes);
-    # Monte Carlo 2e5 cross-check 0.20982.
+    # The sparse example of R's chisq.test help page (x = c(89,37,30,28,2),
+    # p = c(.40,.20,.20,.19,.01); recalled from memory): asymptotic p(X^2) = 0.215013095921
+    # (scipy.stats.chisquare); exact p(X^2) = 0.2099577502 from summing multinomial
+    # probabilities (scipy.special.gammaln) over all C(190, 4) = 5.4e7 outcomes with n = 186.
     obs, p0 = [89, 37, 30, 28, 2], [0.40, 0.20, 0.20, 0.19, 0.01]
     assert fit_to_baseline(obs, p0, pvalue="asymptotic").pvalue == pytest.approx(
         0.215013095921, rel=1e-9)
@@ -213,10 +219,10 @@ def test_auto_refines_near_a_decision_level():
     assert abs(r.pvalue - 1 / 370) >= 3 * r.pvalue_se
 
 
-# ---------------------------------------------------------------- edge cases (issue item 8)
+# ---------------------------------------------------------------- edge cases
 
 def test_impossible_category_is_flagged_not_inf():
-    # scipy chisquare([10,5,1],[10,6,0]) gives inf and p = 0 with a warning (reference E1).
+    # scipy 1.17.1 chisquare([10,5,1],[10,6,0]) gives inf and p = 0 with a RuntimeWarning.
     r = fit_to_baseline([10, 5, 1], [10 / 16, 6 / 16, 0.0])
     assert r.impossible and r.method == "impossible-category"
     assert r.impossible_categories == (2,)
@@ -225,7 +231,8 @@ def test_impossible_category_is_flagged_not_inf():
 
 
 def test_zero_baseline_zero_count_cell_is_dropped():
-    # reference E2: drop cells with expected 0 and observed 0, lower dof by one.
+    # scipy 1.17.1 chisquare([10,6,0],[10,6,0]) gives nan (0/0). A cell with expected 0 and
+    # observed 0 carries nothing: drop it and lower dof by one (common practice, no source).
     r = fit_to_baseline([10, 6, 0], [10 / 16, 6 / 16, 0.0])
     full = fit_to_baseline([10, 6], [10 / 16, 6 / 16])
     assert r.dof == 1 and r.statistic == pytest.approx(full.statistic, abs=1e-12)
@@ -246,7 +253,7 @@ def test_one_category_is_not_tested():
 
 
 def test_huge_counts_do_not_overflow():
-    # reference E6: chisquare([1e9, 1e9 + 1e5]) -> X^2 = 4.9997500124993755,
+    # scipy.stats.chisquare([1e9, 1e9 + 1e5]) -> X^2 = 4.9997500124993755,
     # p = 0.02535098001463615 (scipy 1.17.1).
     obs = [10**9, 10**9 + 10**5]
     r = fit_to_baseline(obs, [0.5, 0.5], pvalue="asymptotic")
