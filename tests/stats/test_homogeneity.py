@@ -20,7 +20,8 @@ PARTY = [[762, 327, 468], [484, 239, 477]]
 
 def test_agresti_party_by_gender():
     # R chisq.test help "From Agresti(2007) p.39": X-squared = 30.070149, df = 2,
-    # p = 2.953589e-07 (R 4.0.2 output); Agresti prints X^2 = 30.07, G^2 = 30.02 (issue 3).
+    # p = 2.953589e-07 (R 4.0.2 output); Agresti prints X^2 = 30.1, G^2 = 30.0 (from memory).
+    # G^2 oracle: scipy chi2_contingency(PARTY, lambda_="log-likelihood") = 30.01669261.
     r = compare_groups(PARTY, pvalue="asymptotic")
     assert r.statistic == pytest.approx(30.0701491, rel=1e-8)
     assert round(r.statistic, 2) == 30.07 and r.dof == 2
@@ -28,14 +29,15 @@ def test_agresti_party_by_gender():
     np.testing.assert_allclose(r.expected, [[703.671382, 319.645267, 533.683351],
                                             [542.328618, 246.354733, 411.316649]], atol=1e-6)
     g = compare_groups(PARTY, statistic="g", pvalue="asymptotic")
-    assert g.statistic == pytest.approx(30.01669261, rel=1e-8)  # reference-cases G-3 CT-1
+    assert g.statistic == pytest.approx(30.01669261, rel=1e-8)  # scipy, see above
     assert round(g.statistic, 2) == 30.02
     assert g.pvalue == pytest.approx(3.033597911e-07, rel=1e-7)
 
 
 def test_agresti_adjusted_residuals():
     # R package chisq.posthoc.test example output on the Agresti (2007) p. 39 table:
-    # F: 4.502054, 0.6994517, -5.315946; M: opposite signs (reference-cases AR-1, SEEN).
+    # F: 4.502054, 0.6994517, -5.315946; M: opposite signs (Agresti prints 4.50, 0.70, -5.32;
+    # from memory).
     r = compare_groups(PARTY)
     np.testing.assert_allclose(r.adjusted_residuals[0], [4.502054, 0.6994517, -5.315946],
                                atol=5e-7)
@@ -43,8 +45,13 @@ def test_agresti_adjusted_residuals():
 
 
 def test_effect_sizes_on_published_tables():
-    # reference-cases ES-7 (V cross-checked with scipy association; Bergsma V COMPUTED-ONLY,
-    # formula Bergsma 2013 J. Korean Stat. Soc. 42:323-328 -> regression values).
+    # Tables: Agresti (2007) p. 39 party x gender; Agresti, Categorical Data Analysis (2nd ed.,
+    # 2002), party x gender, GSS 1991; Agresti (2007) religious beliefs x highest degree;
+    # Montgomery & Runger, Applied Statistics and Probability for Engineers, pension plan x
+    # job class; Agresti (2002) job satisfaction x income, n = 96 (table numbers from memory).
+    # V: scipy.stats.contingency.association(table, method="cramer"), checked below. Bergsma
+    # V: no published value; Bergsma (2013), J. Korean Stat. Soc. 42:323-328, formula,
+    # regression values.
     cases = {
         "CT-1": (PARTY, 0.1044358024, 0.1009199828),
         "CT-2": ([[279, 73, 225], [165, 47, 191]], 0.08457301891, 0.07151866361),
@@ -63,14 +70,16 @@ def test_effect_sizes_on_published_tables():
 
 
 def test_scipy_association_docstring_and_bias_correction_clip():
-    # scipy.stats.contingency.association docstring (reference-cases ES-4): obs4x2 ->
-    # Cramér's V = 0.18617813077483678; Bergsma V = 0.1828618806 (COMPUTED-ONLY).
+    # scipy.stats.contingency.association docstring, obs4x2 example ->
+    # Cramér's V = 0.18617813077483678; Bergsma V = 0.1828618806 (no published value:
+    # Bergsma 2013 formula, regression value).
     r = compare_groups([[100, 150], [203, 322], [420, 700], [320, 210]], pvalue="asymptotic")
     assert r.effect_size == pytest.approx(0.18617813077483678, rel=1e-12)
     assert r.statistic == pytest.approx(84.05606871861963, rel=1e-10)
     assert r.effect_size_corrected == pytest.approx(0.1828618806, rel=1e-8)
     # R confintr / rcompanion cramerV(mtcars am x vs) = 0.1683451; effectsize
-    # cramers_v(adjust = TRUE) = 0 (reference-cases ES-6, SEEN).
+    # cramers_v(adjust = TRUE) = 0 (the test files of the R packages confintr and
+    # effectsize; mtcars counts am x vs [[12, 7], [6, 7]] from memory, consistent with V).
     m = compare_groups([[12, 7], [6, 7]], pvalue="asymptotic")
     assert m.effect_size == pytest.approx(0.1683451246, abs=5e-8)
     assert m.effect_size_corrected == 0.0
@@ -78,8 +87,9 @@ def test_scipy_association_docstring_and_bias_correction_clip():
 
 def test_two_by_two_is_uncorrected():
     # R chisq.test help x <- matrix(c(12, 5, 7, 7), ncol = 2): Yates X^2 = 0.64112; the
-    # uncorrected X^2 = 1.371646027, p = 0.2415292748 (reference-cases CT-6). V from the
-    # uncorrected statistic = 0.2103488674, not the Yates-based 0.1438 (ES-8, relper tests).
+    # uncorrected X^2 = 1.371646027, p = 0.2415292748 (scipy chi2_contingency(x,
+    # correction=False)). V from the uncorrected statistic = 0.2103488674 (scipy association),
+    # not the Yates-based 0.1438 that the R package relper's tests show for chisq.test(x).
     r = compare_groups([[12, 7], [5, 7]], pvalue="asymptotic")
     assert r.statistic == pytest.approx(1.371646027, rel=1e-8)
     assert r.pvalue == pytest.approx(0.2415292748, rel=1e-8)
@@ -90,14 +100,15 @@ def test_two_by_two_is_uncorrected():
 def test_montgomery_pension_plan_and_scipy_docstring():
     # Montgomery & Runger, Applied Statistics and Probability for Engineers, pension plan by
     # job class: chi^2_0 = 49.63, df = 2 (from memory; oracle scipy 49.63235294,
-    # p = 1.669058262e-11; reference-cases CT-4). Adjusted residuals AR-4 (COMPUTED-ONLY).
+    # p = 1.669058262e-11). Adjusted residuals: no published value; statsmodels
+    # Table(t, shift_zeros=False).standardized_resids gives the same (Haberman 1973).
     r = compare_groups([[160, 140, 40], [40, 60, 60]], pvalue="asymptotic")
     assert r.statistic == pytest.approx(49.63235294, rel=1e-8)
     assert abs(r.statistic - 49.63) <= 0.005
     assert r.pvalue == pytest.approx(1.669058262e-11, rel=1e-6)
     np.testing.assert_allclose(r.adjusted_residuals[0], [4.69668218, 0.78278036, -6.71094365],
                                atol=5e-8)
-    # scipy chi2_contingency docstring (CT-5): 2.7777777777777777, p = 0.24935220877729619.
+    # scipy chi2_contingency docstring example: 2.7777777777777777, p = 0.24935220877729619.
     d = compare_groups([[10, 10, 20], [20, 20, 20]], pvalue="asymptotic")
     assert d.statistic == pytest.approx(2.7777777777777777, rel=1e-12)
     assert d.pvalue == pytest.approx(0.24935220877729619, rel=1e-12)
@@ -105,8 +116,11 @@ def test_montgomery_pension_plan_and_scipy_docstring():
 
 
 def test_g_statistic_on_agresti_tables():
-    # reference-cases G-3: CT-2 G^2 = 7.003 (SEEN, vcdExtra GSS residual deviance), CT-3
-    # 69.8, CT-7 6.76 (from memory); scipy oracle values below.
+    # Agresti (2002) party x gender, GSS 1991: G^2 = 7.003, the residual deviance of the
+    # Poisson independence model in the R package vcdExtra's GSS help page; Agresti (2007)
+    # religious beliefs x degree G^2 = 69.8 and Agresti (2002) job satisfaction x income
+    # G^2 = 6.76 (both from memory); oracle values from scipy chi2_contingency(t,
+    # lambda_="log-likelihood").
     cases = {"CT-2": ([[279, 73, 225], [165, 47, 191]], 7.002593856, 0.03015824497),
              "CT-3": ([[178, 138, 108], [570, 648, 442], [138, 252, 252]], 69.81162113,
                       2.487504183e-14),
@@ -119,7 +133,8 @@ def test_g_statistic_on_agresti_tables():
 
 
 def test_zero_cells_use_haberman_not_shifted_residuals():
-    # reference-cases AR-5: Haberman residuals of [[0,5],[5,5]] are +-1.9364917; statsmodels'
+    # Haberman (1973), Biometrics 29:205-220, adjusted residuals of [[0,5],[5,5]] are
+    # +-1.9364917 (statsmodels Table(t, shift_zeros=False).standardized_resids); statsmodels'
     # default shift_zeros=True would give +-1.6106.
     r = compare_groups([[0, 5], [5, 5]])
     np.testing.assert_allclose(np.abs(r.adjusted_residuals), 1.9364917, atol=5e-7)
@@ -128,7 +143,7 @@ def test_zero_cells_use_haberman_not_shifted_residuals():
 def test_exact_and_monte_carlo_conditional_pvalue():
     # R chisq.test help, "Effect of simulating p-values": for matrix(c(12,5,7,7), ncol = 2)
     # simulate.p.value = TRUE, B = 10000 gives "around 0.29!"; exact conditional
-    # P(X^2 >= 1.371646 | margins) = 0.288308104 = Fisher's two-sided p (EX-5).
+    # P(X^2 >= 1.371646 | margins) = 0.288308104 = scipy.stats.fisher_exact two-sided p.
     t = [[12, 7], [5, 7]]
     ex = compare_groups(t, pvalue="exact")
     assert ex.pvalue == pytest.approx(0.288308104, rel=1e-8) and ex.method == "exact"
@@ -148,7 +163,8 @@ def test_monte_carlo_with_fixed_margins_agrees_with_scipy_on_a_sparse_table():
 
 
 def test_empty_rows_and_columns_are_dropped_and_reported():
-    # scipy chi2_contingency([[0,0,0],[10,5,3]]) raises (reference E3).
+    # scipy 1.17.1 chi2_contingency([[0,0,0],[10,5,3]]) raises ValueError (a zero expected
+    # frequency).
     r = compare_groups([[0, 0, 0, 0], [10, 5, 3, 0], [4, 4, 1, 0]], pvalue="asymptotic")
     ref = compare_groups([[10, 5, 3], [4, 4, 1]], pvalue="asymptotic")
     assert r.dropped_rows == (0,) and r.dropped_columns == (3,)
