@@ -41,6 +41,7 @@ from qcfit.policy import (
 )
 from qcfit.store import alarms as sql
 from qcfit.store.engine import from_utc_naive, read_tx, to_utc_naive, write_tx
+from qcfit.store.reference import read_lines
 
 log = logging.getLogger(__name__)
 
@@ -497,8 +498,15 @@ def clear(engine: Any, alarm_id: int, *, by: str, note: str, now: dt.datetime) -
 def list_alarms(engine: Any, *, open_only: bool = False, line: str | None = None,
                 since: dt.datetime | None = None) -> list[AlarmView]:
     """Alarms newest first; ``open_only`` keeps open and acknowledged ones; ``since`` keeps
-    alarms updated at or after it."""
+    alarms whose latest covered shift starts at or after it (so a backfill lists what it
+    covers, not when it ran); ``line`` must be a line the store knows (InvalidArgumentError
+    naming it otherwise)."""
     with read_tx(engine) as conn:
+        if line is not None:
+            known = read_lines(conn, active_only=False)
+            if line not in known:
+                raise InvalidArgumentError("--line", f"unknown line {line!r}; the lines are "
+                                           f"{', '.join(sorted(known)) or '(none)'}")
         rows = sql.select_alarms(conn, states=ACTIVE_STATES if open_only else None, line=line,
                                  since_utc=to_utc_naive(since) if since else None)
     return [view(r) for r in rows]

@@ -129,7 +129,27 @@ def test_filters(cli):
     rows = json.loads(cli("alarms", "--line", "L1", "--format", "json").output)
     assert rows and {r["line"] for r in rows} == {"L1"}
     assert json.loads(cli("alarms", "--since", "2099-01-01", "--format", "json").output) == []
-    assert cli("alarms", "--line", "L9").output.strip() == "No alarms."
+    r = cli("alarms", "--line", "L9")
+    assert r.exit_code == 2
+    assert r.output.strip() == "Error: --line: unknown line 'L9'; the lines are L1, L2, L3, L4"
+
+
+def test_since_filters_on_the_shifts_covered_not_on_when_evaluate_ran(cli):
+    # evaluated today (wall clock), covering shifts of 2026-01-06 only (plant dates)
+    evaluated(cli)
+    every = json.loads(cli("alarms", "--format", "json").output)
+    assert every
+    assert json.loads(cli("alarms", "--since", "2026-01-06", "--format", "json").output) == every
+    assert json.loads(cli("alarms", "--since", "2026-01-07", "--format", "json").output) == []
+
+
+def test_age_counts_from_the_shift_that_raised_the_alarm(cli):
+    evaluated(cli)
+    rows = [ln.split() for ln in cli("alarms").output.splitlines()[1:] if ln[:6].strip().isdigit()]
+    assert rows
+    # the shifts are of 2026-01-06 and the table is read today: days old, not minutes
+    ages = [row[6] for row in rows]
+    assert all(a.endswith("d") and int(a[:-1]) >= 1 for a in ages), ages
 
 
 def _mix_id(cli) -> int:

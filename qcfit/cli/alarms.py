@@ -83,7 +83,8 @@ INDENT = 8  # the words under each row start here
 
 def table_lines(alarms: Sequence[Any], now: dt.datetime, width: int = WIDTH) -> list[str]:
     """The alarm table: one row of figures per alarm, then what changed in words, indented
-    and wrapped; every line at most ``width`` characters."""
+    and wrapped; every line at most ``width`` characters. ``Age`` counts from the start of the
+    shift that raised the alarm (from its opening when it has no shift)."""
     def row(cells: Sequence[str]) -> str:
         parts = [f"{_cut(c, w):{a}{w}}" for c, (_, w, a) in zip(cells, COLUMNS, strict=True)]
         return " ".join(parts).rstrip()[:width]
@@ -92,7 +93,7 @@ def table_lines(alarms: Sequence[Any], now: dt.datetime, width: int = WIDTH) -> 
     for a in alarms:
         out.append(row([
             str(a.id), a.line or "(all)", KIND_SHORT.get(a.kind, a.kind), a.shift_id or "-",
-            a.severity, STATE_SHORT.get(a.state, a.state), age(a.opened, now),
+            a.severity, STATE_SHORT.get(a.state, a.state), age(a.shift_start or a.opened, now),
             str(a.shift_count), fmt_p(a.pvalue), fmt_p(a.adjusted_pvalue),
             fmt_effect(a.kind, a.effect_size),
         ]))
@@ -219,7 +220,8 @@ def _tz(a: Any) -> dt.tzinfo | None:
 @main.command("alarms")
 @click.option("--open", "open_only", is_flag=True, help="Only open and acknowledged alarms.")
 @click.option("--line", metavar="L", help="Only alarms of line L.")
-@click.option("--since", metavar="DATE", help="Only alarms updated on or after DATE (plant time).")
+@click.option("--since", metavar="DATE",
+              help="Only alarms covering a shift that starts on or after DATE (plant date).")
 @click.option("--format", "fmt", type=click.Choice(["table", "csv", "json"]), default="table",
               show_default=True, help="Output format.")
 @click.pass_context

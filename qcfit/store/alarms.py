@@ -70,8 +70,9 @@ def select_alarms(
     since_utc: dt.datetime | None = None,
     first_shift_id: int | None = None,
 ) -> list[dict[str, Any]]:
-    """Alarms, newest first; ``since_utc`` keeps alarms updated at or after it.
-    ``first_shift_id`` adds alarms raised by that shift whatever their state."""
+    """Alarms, newest first; ``since_utc`` keeps alarms whose latest shift starts at or after
+    it (an alarm tied to no shift: updated at or after it). ``first_shift_id`` adds alarms
+    raised by that shift whatever their state."""
     query = _alarm_select()
     conds = []
     if states:
@@ -79,7 +80,8 @@ def select_alarms(
     if line is not None:
         conds.append(alarm.c.line == line)
     if since_utc is not None:
-        conds.append(alarm.c.updated_utc >= since_utc)
+        conds.append(or_(_last.c.start_utc >= since_utc,
+                         and_(alarm.c.last_shift_id.is_(None), alarm.c.updated_utc >= since_utc)))
     if conds:
         where = and_(*conds)
         if first_shift_id is not None:
