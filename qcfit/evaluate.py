@@ -37,6 +37,7 @@ as ``extra`` (they are appended unchanged).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import hashlib
 import logging
 import math
@@ -308,9 +309,12 @@ def _baseline_proportions(
     table: CountTable, line_idx: int, baseline: BaselineRef
 ) -> tuple[np.ndarray | None, Finding | None]:
     line = table.lines[line_idx]
-    known = dict(zip(baseline.categories, baseline.proportions, strict=True))
+    try:
+        props, absent = _shares_in_order(baseline, tuple(table.categories))
+    except TypeError:  # an unhashable baseline record: no cache
+        props, absent = _shares_in_order.__wrapped__(baseline, tuple(table.categories))
     counts = table.counts[line_idx]
-    missing = [c for j, c in enumerate(table.categories) if c not in known and counts[j] > 0]
+    missing = [table.categories[j] for j in absent if counts[j] > 0]
     if missing:
         return None, Finding(
             kind=KIND_BASELINE,
@@ -324,11 +328,25 @@ def _baseline_proportions(
             n=int(counts.sum()),
             details={"categories": missing},
         )
-    props = np.array([float(known.get(c, 0.0)) for c in table.categories])
+    if props is None:
+        raise ValueError(f"baseline {baseline.name!r} has no positive share")
+    return props, None
+
+
+@functools.lru_cache(maxsize=256)
+def _shares_in_order(baseline: BaselineRef, categories: tuple[str, ...]
+                     ) -> tuple[np.ndarray | None, tuple[int, ...]]:
+    """The baseline's shares in ``categories`` order, normalised (read-only; None when no share
+    is positive), and the positions of categories the baseline does not name."""
+    known = dict(zip(baseline.categories, baseline.proportions, strict=True))
+    absent = tuple(j for j, c in enumerate(categories) if c not in known)
+    props = np.array([float(known.get(c, 0.0)) for c in categories])
     total = props.sum()
     if not total > 0:
-        raise ValueError(f"baseline {baseline.name!r} has no positive share")
-    return props / total, None
+        return None, absent
+    props = props / total
+    props.setflags(write=False)
+    return props, absent
 
 
 def _gof_job(table: CountTable, i: int, baseline: BaselineRef, limits: Any) -> _GofJob | Finding:
