@@ -212,6 +212,7 @@ def _active(row: Mapping[str, Any], judged_start: dt.datetime | None = None) -> 
                       and first_start > judged_start),
         crossed_after=(judged_start is not None and last_start is not None
                        and last_start > judged_start),
+        change_start=details.get("change_start"),
     )
 
 

@@ -92,6 +92,7 @@ class ActiveAlarm:
     in_control_shifts: tuple[str, ...] = ()
     raised_after: bool = False
     crossed_after: bool = False
+    change_start: Mapping[str, Any] | None = None  # sequential: the start estimate it keeps
 
 
 @dataclass(frozen=True, slots=True)
@@ -367,6 +368,8 @@ def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names,
             worst = dataclasses.replace(worst, severity=ALARM)
         figs = _figures(worst, names, vs_rest if kind == ev.KIND_BETWEEN else ())
         target = (covering or live or [None])[0]
+        if kind == ev.KIND_SEQUENTIAL:
+            figs = _with_change_start(figs, worst, shift_id, target)
         if target is not None:
             return [_update(target, shift_id, figs, kind, line)]
         # a sequential chart already accumulates evidence across shifts: no k-of-m rule on top
@@ -378,6 +381,54 @@ def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names,
         return [AlarmDecision(action=RAISE, kind=kind, line=line, shift_id=shift_id,
                               shifts=(shift_id,), note=figs["summary"], **figs)]
     return [d for a in covering + live if (d := _quiet(a, found, thresholds, shift_id, kind))]
+
+
+START_WORDS = "change most likely began"
+
+
+def change_start(f: Finding, shift_id: str,
+                 held: Mapping[str, Any] | None) -> Mapping[str, Any] | None:
+    """Where a sequential alarm's change began, as the alarm keeps it: the estimate of the chart
+    that raised it, taken at the raising shift (``reference``). Later shifts re-derive it from
+    whichever chart ranks first and it would drift; it is replaced only when the chart that
+    raised the alarm restarted (its run now starts at a later chart step)."""
+    signals = [s for s in f.details.get("signals") or () if isinstance(s, Mapping)]
+    if not signals:
+        return held
+    t_now = int(f.details.get("t") or 0)
+
+    def estimate(sig: Mapping[str, Any]) -> dict[str, Any]:
+        back = int(sig.get("shifts_back") or 0)
+        return {"chart": sig.get("chart"), "shift": sig.get("start_shift"), "back": back,
+                "reference": shift_id, "t_start": t_now - back}
+
+    if held is None:
+        return estimate(signals[0])
+    same = next((s for s in signals if s.get("chart") == held.get("chart")), None)
+    if same is None:
+        return held
+    new = estimate(same)
+    return new if new["t_start"] > int(held.get("t_start") or 0) else held
+
+
+def change_start_words(start: Mapping[str, Any]) -> str:
+    """e.g. ``change most likely began in shift 2026-10-07_B (2 shifts before 2026-10-08_A)``."""
+    back, ref = int(start.get("back") or 0), start.get("reference")
+    if back == 0:
+        return f"{START_WORDS} in shift {ref}"
+    where = f"in shift {start['shift']}" if start.get("shift") else "earlier"
+    return f"{START_WORDS} {where} ({back} shift{'s' if back != 1 else ''} before {ref})"
+
+
+def _with_change_start(figs: dict[str, Any], f: Finding, shift_id: str,
+                       target: ActiveAlarm | None) -> dict[str, Any]:
+    held = target.change_start if target is not None else None
+    start = change_start(f, shift_id, held)
+    if start is None:
+        return figs
+    clauses = [c for c in figs["summary"].split("; ") if not c.startswith(START_WORDS)]
+    return figs | {"summary": "; ".join([*clauses, change_start_words(start)]),
+                   "details": dict(figs["details"]) | {"change_start": dict(start)}}
 
 
 def _update(a: ActiveAlarm, shift_id: str, figs: dict[str, Any], kind: str, line) -> AlarmDecision:

@@ -299,3 +299,40 @@ def test_in_control_before_the_last_crossing_does_not_count_toward_auto_clear():
     a = active(shifts=("2026-01-05_C", "2026-01-06_B"), crossed_after=True,
                in_control_shifts=("2026-01-06_C", "2026-01-07_A"))
     assert decide([a_finding(p=0.7)], Thresholds(auto_clear_after=3), active=[a]).decisions == ()
+
+
+# --------------------------------------------------------------------------- sequential start
+
+
+def a_signal(t: int, *signals: tuple[str, int, str | None]) -> Finding:
+    """A sequential crossing at chart step t; signals (chart, shifts back, start shift), the
+    first ranking first."""
+    sigs = [{"chart": c, "shifts_back": b, "start_shift": s, "statistic": 10.0, "limit": 5.0}
+            for c, b, s in signals]
+    words = f"flash up 14.0% -> 26.6% (x1.90); {signals[0][0]} 10.00 >= limit 5.00; " \
+            f"change most likely began in shift {signals[0][2]} ({signals[0][1]} shifts back)"
+    return Finding(kind=ev.KIND_SEQUENTIAL, line="L2", verdict=policy.ALARM,
+                   severity=policy.ALARM, reason=words, effect_size=2.0,
+                   details={"t": t, "signals": sigs})
+
+
+def test_the_start_estimate_is_kept_from_the_raising_shift():
+    # raised on 2026-10-07_B by the bank chart: the change began in that very shift
+    (d,) = decide([a_signal(30, ("bank (CT -> FL)", 0, "2026-10-07_B"))],
+                  shift_id="2026-10-07_B").decisions
+    assert d.action == policy.RAISE
+    assert d.summary.endswith("; change most likely began in shift 2026-10-07_B")
+    held = d.details["change_start"]
+    a = active(kind=ev.KIND_SEQUENTIAL, line="L2", severity=policy.ALARM,
+               first_shift="2026-10-07_B", shifts=("2026-10-07_B",), change_start=held)
+    # 10 charted shifts later the MEWMA ranks first and points 26 shifts back: no drift
+    later = a_signal(40, ("MEWMA", 26, "2026-09-28_A"), ("bank (CT -> FL)", 10, "2026-10-07_B"))
+    (u,) = decide([later], active=[a], shift_id="2026-10-11_A").decisions
+    assert u.action == policy.UPDATE and u.details["change_start"] == held
+    assert u.summary.endswith("; change most likely began in shift 2026-10-07_B")
+    assert u.summary.count("most likely began") == 1
+    # the bank chart restarted (its run now begins at step 48): the estimate moves with it
+    again = a_signal(50, ("bank (CT -> FL)", 2, "2026-10-14_C"))
+    (r,) = decide([again], active=[a], shift_id="2026-10-15_B").decisions
+    assert r.summary.endswith("change most likely began in shift 2026-10-14_C "
+                              "(2 shifts before 2026-10-15_B)")

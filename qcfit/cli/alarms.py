@@ -154,7 +154,7 @@ def story_lines(story: Any, tz: dt.tzinfo | None, names: Mapping[str, str]) -> l
     if d.get("method") and a.kind != "sequential":
         out.append(f"  p-value by {d['method']}" + (f"; {d['reason']}" if d.get("reason") else ""))
     if a.kind == "sequential":
-        out += chart_lines(d.get("extra") or {}, names)
+        out += chart_lines(d.get("extra") or {}, names, a.last_shift_id)
     if a.baseline_version_id is not None:
         eff = story.baseline_effective.isoformat() if story.baseline_effective else "?"
         out.append(f"  Baseline: {a.baseline_name} (version {a.baseline_version_id}, "
@@ -175,13 +175,16 @@ def story_lines(story: Any, tz: dt.tzinfo | None, names: Mapping[str, str]) -> l
     return out
 
 
-def chart_lines(extra: Mapping[str, Any], names: Mapping[str, str]) -> list[str]:
-    """A sequential alarm's charts at their limits (latest shift), with their drivers."""
+def chart_lines(extra: Mapping[str, Any], names: Mapping[str, str],
+                reference: str | None = None) -> list[str]:
+    """A sequential alarm's charts at their limits (latest shift, ``reference``), with their
+    drivers."""
     out = []
     for sig in extra.get("signals") or []:
         start = sig.get("start_shift") or "-"
         out.append(f"  {sig['chart']}: {sig['statistic']:.2f} >= limit {sig['limit']:.2f}, "
-                   f"change began {start} ({sig['shifts_back']} shift(s) back)")
+                   f"change began {start} ({sig['shifts_back']} shift(s) before "
+                   f"{reference or 'the latest shift'})")
         for c in sig.get("drivers") or []:
             ratio = c["share"] / c["reference_share"] if c.get("reference_share") else 0.0
             out.append(f"      {names.get(c['code'], c['code'])} {c['direction']} "
