@@ -98,8 +98,9 @@ class AlarmView:
             "severity": self.severity,
             "state": self.state,
             "categories": [
-                {"code": c["code"], "direction": c["direction"],
-                 "adjusted_residual": c.get("adjusted_residual")}
+                ({"line": c["line"]} if c.get("line") else {})
+                | {"code": c["code"], "direction": c["direction"],
+                   "adjusted_residual": c.get("adjusted_residual")}
                 for c in self.categories
             ],
             "summary": self.summary,
@@ -229,10 +230,14 @@ def active_alarms(conn: Any, shift_row_id: int | None = None) -> list[ActiveAlar
 # applying decisions
 
 
-def _categories_json(cats: Sequence[CategoryShift]) -> list[dict[str, Any]]:
+def _categories_json(cats: Sequence[CategoryShift],
+                     lines: Sequence[str | None] = ()) -> list[dict[str, Any]]:
+    """Categories as stored on the alarm; between lines each carries its ``line``."""
     out = []
-    for c in cats:
+    for i, c in enumerate(cats):
         row = c.as_json()
+        if i < len(lines) and lines[i] is not None:
+            row = {"line": lines[i]} | row
         out.append(row)
     return out
 
@@ -243,7 +248,7 @@ def _figures(d: AlarmDecision) -> dict[str, Any]:
         "pvalue": d.pvalue,
         "adjusted_pvalue": d.adjusted_pvalue,
         "effect_size": d.effect_size,
-        "categories": _categories_json(d.categories),
+        "categories": _categories_json(d.categories, d.category_lines),
         "summary": d.summary or d.note or d.kind,
     }
 

@@ -112,6 +112,7 @@ class AlarmDecision:
     adjusted_pvalue: float | None = None
     effect_size: float | None = None
     categories: tuple[CategoryShift, ...] = ()
+    category_lines: tuple[str | None, ...] = ()  # between lines: the line of each category
     summary: str = ""
     note: str = ""
     shifts: tuple[str, ...] = ()
@@ -269,9 +270,13 @@ def crossed(f: Finding) -> bool:
 
 def _figures(f: Finding, names: Mapping[str, str], vs_rest: Sequence[Finding]) -> dict[str, Any]:
     lines = [r.line for r in vs_rest]
-    # between lines: the categories of the line that differs most from the rest
-    cats = f.top_categories or (vs_rest[0].top_categories if vs_rest else ())
+    cats, cat_lines = f.top_categories, ()
+    if not cats and vs_rest:  # between lines: the categories of the lines the summary names
+        named = [(r.line, c) for r in vs_rest[:2] for c in r.top_categories]
+        cats = tuple(c for _, c in named)
+        cat_lines = tuple(line for line, _ in named)
     return {
+        "category_lines": cat_lines,
         "severity": f.severity or ALARM,
         "baseline_version_id": f.baseline_version_id,
         "pvalue": f.pvalue,

@@ -16,7 +16,7 @@ from test_service import LINES, flash_jump, healthy, load_counts, make_store, pl
 from qcfit.alarmlog import AlarmView
 from qcfit.calendar import ShiftCalendar
 from qcfit.cli import main
-from qcfit.cli.alarms import csv_text, spreadsheet_safe, table_lines
+from qcfit.cli.alarms import csv_text, fmt_effect, spreadsheet_safe, table_lines
 
 JSON_FIELDS = {"id", "kind", "line", "shift_date", "shift_name", "shift_start", "pvalue",
                "adjusted_pvalue", "effect_size", "severity", "state", "categories",
@@ -101,6 +101,8 @@ def test_alarms_json_has_the_agreed_fields(cli):
     assert [row["line"] for row in mix] == ["L1"]
     assert between and all(row["line"] is None for row in between)
     assert between[0]["categories"][0]["code"] == "FL"  # named from the line that differs
+    assert between[0]["categories"][0]["line"] == "L1"  # ... and carries that line
+    assert between[0]["summary"].startswith("lines differ") and "L1: " in between[0]["summary"]
     m = mix[0]
     assert (m["shift_date"], m["shift_name"]) == ("2026-01-06", "A")
     assert m["shift_start"] == "2026-01-06T06:00:00-06:00"  # plant time, America/Chicago
@@ -238,3 +240,12 @@ def test_table_lines_never_exceed_the_width():
     now = dt.datetime(2026, 1, 9, tzinfo=dt.UTC)
     for text in table_lines([long, _view(id=123456, shift_count=7)], now):
         assert len(text) <= 100
+
+
+def test_effect_of_a_sequential_alarm_is_labelled_as_a_share_of_the_limit():
+    # a sequential alarm's effect_size is the leading chart's statistic / its limit
+    assert fmt_effect("sequential", 8.83) == "8.8x lim"
+    assert (fmt_effect("baseline", 0.48), fmt_effect("rate", 1.35)) == ("w 0.48", "1.35x")
+    seq = _view(kind="sequential", effect_size=12.34, pvalue=None, adjusted_pvalue=None)
+    header, row = table_lines([seq], dt.datetime(2026, 1, 9, tzinfo=dt.UTC))[:2]
+    assert row.endswith("12.3x lim") and len(header) == len(row)

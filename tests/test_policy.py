@@ -259,6 +259,21 @@ def test_between_lines_alarm_names_the_differing_line():
     assert d.summary == "lines differ (V 0.30); L3: flash share 2.5x rest (adj. residual +5.2)"
     assert d.details["lines_differing"] == ["L3"]
     assert [c.code for c in d.categories] == ["FL"]  # from the line that differs
+    assert d.category_lines == ("L3",)
+
+
+def test_between_lines_categories_carry_the_lines_the_summary_names():
+    between = dataclasses.replace(a_finding(kind=ev.KIND_BETWEEN, p=1e-6, w=0.3), effect_name="V")
+    vs = [a_finding("L2", kind=ev.KIND_VS_REST, p=1e-8, w=0.5,
+                    cats=(CategoryShift("FL", "up", 8.4, 60, 20.0, 0.3, 0.1),
+                          CategoryShift("SCR", "down", -3.0, 10, 20.0, 0.1, 0.2))),
+          a_finding("L4", kind=ev.KIND_VS_REST, p=1e-4, w=0.3,
+                    cats=(CategoryShift("SH", "up", 3.3, 25, 11.0, 0.25, 0.11),))]
+    (d,) = decide([between, *vs], names={"FL": "flash", "SH": "short shot"}).decisions
+    assert d.summary.startswith("lines differ (V 0.30); L2: flash share 3.0x rest")
+    assert "; L4: short shot share 2.3x rest" in d.summary
+    assert [(ln, c.code) for ln, c in zip(d.category_lines, d.categories, strict=True)] == [
+        ("L2", "FL"), ("L2", "SCR"), ("L4", "SH")]
 
 
 def test_rate_words():

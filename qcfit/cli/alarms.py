@@ -66,6 +66,8 @@ def fmt_effect(kind: str, effect: float | None) -> str:
         return "-"
     if kind == "rate":
         return f"{effect:.2f}x"
+    if kind == "sequential":  # the leading chart's statistic / its limit
+        return f"{effect:.1f}x lim"
     letter = EFFECT_LETTER.get(kind, "")
     return f"{letter} {effect:.2f}".strip()
 
@@ -77,7 +79,7 @@ def _cut(text: str, width: int) -> str:
 
 COLUMNS = (("ID", 6, ">"), ("Line", 8, "<"), ("Kind", 5, "<"), ("Shift", 14, "<"),
            ("Severity", 8, "<"), ("State", 6, "<"), ("Age", 4, ">"), ("Shifts", 6, ">"),
-           ("p", 6, ">"), ("adj. p", 6, ">"), ("Effect", 7, ">"))
+           ("p", 6, ">"), ("adj. p", 6, ">"), ("Effect", 9, ">"))
 INDENT = 8  # the words under each row start here
 
 
@@ -107,7 +109,9 @@ def categories_text(categories: Sequence[Mapping[str, Any]]) -> str:
     parts = []
     for c in categories:
         r = c.get("adjusted_residual")
-        parts.append(f"{c['code']} {c['direction']}" + (f" {r:+.1f}" if r is not None else ""))
+        where = f"{c['line']} " if c.get("line") else ""
+        parts.append(f"{where}{c['code']} {c['direction']}"
+                     + (f" {r:+.1f}" if r is not None else ""))
     return "; ".join(parts)
 
 
