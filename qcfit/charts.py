@@ -502,6 +502,8 @@ class ChartStage:
         self.paths = paths
         self.budget_s = budget_s
         self._limits: dict[str, LineLimits] = {}
+        self._plans: dict[tuple[str, Any], LinePlan] = {}  # (line, baseline) -> plan
+        self._keys: dict[tuple[Any, ...], str] = {}  # (plan signature, level) -> cache key
         self._done: dict[str, list[_Done]] = {}  # line -> computed this run, in start order
         self._pending: dict[str, dict[str, _Done]] = {}  # shift id -> line -> rows to write
         self.calibration_seconds = 0.0
@@ -536,7 +538,7 @@ class ChartStage:
             if b is None:
                 continue
             try:
-                plan = plan_line(line, b, self.settings)
+                plan = self._plan(line, b)
             except InvalidArgumentError as exc:  # e.g. a baseline with one category
                 out.append(ev.Finding(kind=ev.KIND_SEQUENTIAL, line=line, verdict=ev.NOT_TESTED,
                                       baseline_version_id=b.version_id,
@@ -554,6 +556,16 @@ class ChartStage:
             self._remember(line, done)
             out.append(found)
         return out
+
+    def _plan(self, line: str, baseline: BaselineRef) -> LinePlan:
+        """:func:`plan_line`, once per line and baseline in a run (the settings are fixed)."""
+        try:
+            found = self._plans.get((line, baseline))
+        except TypeError:  # an unhashable baseline record: no memo
+            return plan_line(line, baseline, self.settings)
+        if found is None:
+            found = self._plans[(line, baseline)] = plan_line(line, baseline, self.settings)
+        return found
 
     def _line(self, shift: ShiftInstance, plan: LinePlan, counts: np.ndarray,
               stored: Any, totals: Sequence[int]) -> tuple[ev.Finding, _Done]:
@@ -607,7 +619,10 @@ class ChartStage:
 
         target = float(self.settings.target_arl)
         base = int(self.config.thresholds.seed)
-        key = calibration_key(plan, level, target, base, self.paths)
+        memo = (plan.signature, level, target, base, self.paths)
+        key = self._keys.get(memo)
+        if key is None:
+            key = self._keys[memo] = calibration_key(plan, level, target, base, self.paths)
         if key in self._limits:
             return self._limits[key]
         with read_tx(self.engine) as conn:
