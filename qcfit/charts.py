@@ -297,6 +297,22 @@ def _stat(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
 
 
+_LIMITS_JSON: dict[int, tuple[LineLimits, Any]] = {}
+
+
+def _limits_json(lim: LineLimits) -> Any:
+    """``lim.limits.to_json()``, made once per LineLimits object (the object is kept with its
+    text so that its id is not reused while cached). Callers must not change the result."""
+    hit = _LIMITS_JSON.get(id(lim))
+    if hit is not None and hit[0] is lim:
+        return hit[1]
+    if len(_LIMITS_JSON) > 4096:
+        _LIMITS_JSON.clear()
+    text = lim.limits.to_json()
+    _LIMITS_JSON[id(lim)] = (lim, text)
+    return text
+
+
 def rows_for(plan: LinePlan, state: SequentialState, step: SequentialStep,
              lim: LineLimits) -> tuple[dict[str, Any], ...]:
     """The chart_state rows of a line after a shift (one per chart)."""
@@ -304,7 +320,7 @@ def rows_for(plan: LinePlan, state: SequentialState, step: SequentialStep,
     common = {"format": s["format"], "t": s["t"]}
     meta = {"signature": plan.signature, "codes": list(plan.codes), "charts": list(plan.charts),
             "calibration": lim.key, "limits_kind": lim.kind, "n_level": lim.n_level,
-            "limits": lim.limits.to_json()}
+            "limits": _limits_json(lim)}
     rows = [
         {"chart": CHART_MEWMA, "state": common | {k: s[k] for k in ("ewma_z", "ewma_v", "ewma_calm")}
          | {"design": meta}, "statistic": _stat(step.ewma_stat[0]),
