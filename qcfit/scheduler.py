@@ -21,8 +21,10 @@ store rebuilt from the config at each start and reload, job defaults set explici
 * ``beat``: every :attr:`Options.beat_s` seconds, writes the ``heartbeat`` row; a catch-up
   writes it too.
 
-Catch-ups never overlap (one lock); one in flight stops between two shifts when the service
-is asked to stop (each shift is its own transaction: committed whole or absent).
+Catch-ups never overlap (one lock); one in flight stops between two write transactions when
+the service is asked to stop (each a chunk of shifts, committed whole or absent; the shifts the
+catch-up had not reached are left due, so the next catch-up finishes a forward recomputation,
+see :mod:`qcfit.service`).
 
 The main thread runs ``while not stop.wait(loop)``: it re-checks the store lock (exit 1 if it
 is lost, so the supervisor restarts the service), reloads the config on SIGHUP or when the

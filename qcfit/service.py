@@ -12,7 +12,20 @@
 If anything fails, a ``failed`` evaluation row (with the error) and a ``service-fault`` alarm
 are written in their own transaction; a failed shift is retried by the next
 :func:`evaluate_due`. A failed re-evaluation of a shift that has a good evaluation leaves the
-good one current.
+good one current (unless the run had already marked it due, see below).
+
+Re-evaluation runs forward (:func:`evaluate_shifts`). A shift's sequential chart values rest
+on the chart rows of the shift before it, so after the shifts asked for, every later shift
+that has chart rows is re-evaluated too, in start order (``forward`` on its summary); its
+alarm decisions then follow in order as well. A retry is a re-evaluation like any other: a
+failed shift in the middle of the history is due, and retrying it redoes every later shift,
+so their charts include its counts. A run is written :data:`CHUNK` shifts per write
+transaction, and its first commit also marks every shift of the run not reached yet as due
+(their current evaluations superseded, kept for the record): a run killed or stopped midway
+leaves no shift whose results rest on an outdated past, and the next :func:`evaluate_due`
+(the service's next catch-up) finishes it from the first shift not rewritten. After a shift
+fails, the run goes on from the chart rows in the store (a new chart stage), so no committed
+chart value rests on values that were never committed.
 
 Reproducibility: the evaluation records the config hash, the code version and the Monte Carlo
 seed, derived from ``[thresholds] seed`` and the shift id (:func:`shift_seed`), so evaluating
@@ -78,6 +91,9 @@ class EvaluationSummary:
     updated: tuple[int, ...] = ()
     cleared: tuple[int, ...] = ()
     seconds: float = 0.0
+    #: not asked for: re-evaluated because an earlier shift of the run changes what its
+    #: sequential chart values rest on (see :func:`evaluate_shifts`)
+    forward: bool = False
 
     @property
     def ok(self) -> bool:
@@ -269,13 +285,6 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
         seconds=time.perf_counter() - t0)
 
 
-def _commit(engine: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
-            seed: int, now: dt.datetime, t0: float, extra: Any = None) -> EvaluationSummary:
-    # one write transaction; retried (from scratch) if the store stays locked
-    return run_write(engine, lambda conn: _write_one(conn, config, shift, findings, seed, now, t0,
-                                                     extra))
-
-
 def _error_text(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {exc}"[:MAX_ERROR]
 
@@ -339,7 +348,33 @@ def evaluate_shift(
 
     ``now`` (aware) is recorded as the start of the evaluation; ``versions`` (content hash ->
     baseline version id) saves re-syncing the config's baselines when evaluating many shifts.
+    Only this shift is evaluated; :func:`evaluate_shifts` also redoes the later shifts whose
+    sequential charts rest on it.
     """
+    summary, _ = _evaluate_one(engine, config, shift, now=now, versions=versions,
+                               os_user=os_user, extra=extra)
+    return summary
+
+
+Marks = dict[str, int]  # shift id -> its evaluation superseded to make it due again
+
+
+def _mark_due(conn: Any, shifts: Sequence[ShiftInstance], now: dt.datetime) -> Marks:
+    """Inside the caller's write transaction: supersede the current evaluation (ok or failed)
+    of each of ``shifts``, so that :func:`due_shifts` returns them until they are rewritten."""
+    marked: Marks = {}
+    at = to_utc_naive(now)
+    for s in shifts:
+        row = shift_row(conn, s.id)
+        if row is not None and (old := esql.supersede_current(conn, row.row_id, at)) is not None:
+            marked[s.id] = old
+    return marked
+
+
+def _evaluate_one(engine: Any, config: Any, shift: ShiftInstance, *, now: dt.datetime,
+                  versions: Mapping[str, int] | None, os_user: str, extra: ExtraFindings | None,
+                  rest: Sequence[ShiftInstance] = ()) -> tuple[EvaluationSummary, Marks]:
+    """:func:`evaluate_shift`; an ok commit also marks ``rest`` due (same transaction)."""
     if now.tzinfo is None:
         raise InvalidArgumentError("now", "pass an aware datetime")
     t0 = time.perf_counter()
@@ -351,38 +386,79 @@ def evaluate_shift(
             versions = sync_versions(engine, config, now=now, os_user=os_user)
         (table,) = _read_tables(engine, config, [shift])
         findings = _compute(config, versions, table, seed, extra)
-        summary = _commit(engine, config, shift, findings, seed, now, t0, extra)
+        summary, marked = run_write(engine, lambda conn: (
+            _write_one(conn, config, shift, findings, seed, now, t0, extra),
+            _mark_due(conn, rest, now)))
     except Exception as exc:
-        return _record_failure(engine, config, shift, exc, seed, now, t0)
+        return _record_failure(engine, config, shift, exc, seed, now, t0), {}
     _log_done(summary)
-    return summary
+    return summary, marked
 
 
 CHUNK = 25  # shifts per write transaction in a backfill
 
 
-def _evaluate_chunk(engine: Any, config: Any, shifts: Sequence[ShiftInstance], *,
-                    now: dt.datetime, versions: Mapping[str, int], os_user: str,
-                    extra: ExtraFindings | None) -> list[EvaluationSummary]:
-    """Several shifts: one read transaction, compute, then ONE write transaction for all of
-    them in order (each shift's results are still all-or-nothing). Any trouble, and the chunk
-    is evaluated shift by shift instead, so failures are recorded one by one."""
-    t0 = time.perf_counter()
-    try:
-        tables = _read_tables(engine, config, shifts)
-        work = [(s, shift_seed(config.thresholds.seed, s.id)) for s in shifts]
-        computed = [(s, seed, _compute(config, versions, t, seed, extra))
-                    for (s, seed), t in zip(work, tables, strict=True)]
-        out = run_write(engine, lambda conn: [
-            _write_one(conn, config, s, found, seed, now, t0, extra) for s, seed, found in computed])
-    except Exception as exc:
-        log.warning("evaluating %d shifts together failed (%s); going shift by shift",
-                    len(shifts), _error_text(exc))
-        return [evaluate_shift(engine, config, s, now=now, versions=versions, os_user=os_user,
-                               extra=extra) for s in shifts]
-    for summary in out:
-        _log_done(summary)
-    return out
+@dataclass(slots=True)
+class _Run:
+    """One :func:`evaluate_shifts` run: what every chunk needs, and the marks made so far."""
+
+    engine: Any
+    config: Any
+    now: dt.datetime
+    versions: Mapping[str, int]
+    os_user: str
+    extra: ExtraFindings | None
+    fresh_stage: bool  # the chart stage is ours: start a new one after a failed shift
+    marked: Marks | None = None  # None until the first commit marked the rest of the run
+
+    def one(self, shift: ShiftInstance, rest: Sequence[ShiftInstance]) -> EvaluationSummary:
+        summary, marked = _evaluate_one(
+            self.engine, self.config, shift, now=self.now, versions=self.versions,
+            os_user=self.os_user, extra=self.extra, rest=rest if self.marked is None else ())
+        if summary.ok and self.marked is None:
+            self.marked = marked
+        elif not summary.ok and self.fresh_stage:
+            # the stage may hold chart values of the failed shift that never reached the
+            # store: later shifts must start from what the store has
+            self.extra = charts.stage_for(self.engine, self.config, now=self.now)
+        return summary
+
+    def chunk(self, shifts: Sequence[ShiftInstance], rest: Sequence[ShiftInstance]
+              ) -> list[EvaluationSummary]:
+        """Several shifts: one read transaction, compute, then ONE write transaction for all
+        of them in order (each shift's results are still all-or-nothing); the run's first
+        commit also marks ``rest`` due. Any trouble, and the chunk is evaluated shift by
+        shift instead, so failures are recorded one by one."""
+        t0 = time.perf_counter()
+        config, extra, now = self.config, self.extra, self.now
+        to_mark = rest if self.marked is None else ()
+        try:
+            tables = _read_tables(self.engine, config, shifts)
+            work = [(s, shift_seed(config.thresholds.seed, s.id)) for s in shifts]
+            computed = [(s, seed, _compute(config, self.versions, t, seed, extra))
+                        for (s, seed), t in zip(work, tables, strict=True)]
+            out, marked = run_write(self.engine, lambda conn: (
+                [_write_one(conn, config, s, found, seed, now, t0, extra)
+                 for s, seed, found in computed],
+                _mark_due(conn, to_mark, now)))
+        except Exception as exc:
+            log.warning("evaluating %d shifts together failed (%s); going shift by shift",
+                        len(shifts), _error_text(exc))
+            return [self.one(s, [*shifts[i + 1:], *rest]) for i, s in enumerate(shifts)]
+        if self.marked is None:
+            self.marked = marked
+        for summary in out:
+            _log_done(summary)
+        return out
+
+
+def _labelled(summary: EvaluationSummary, run: _Run, asked: set[str]) -> EvaluationSummary:
+    old = (run.marked or {}).get(summary.shift_id)
+    forward = summary.shift_id not in asked
+    if (old is None or summary.superseded_id is not None) and not forward:
+        return summary
+    return dataclasses.replace(summary, forward=forward,
+                               superseded_id=summary.superseded_id or old)
 
 
 def evaluate_shifts(
@@ -397,23 +473,30 @@ def evaluate_shifts(
     chunk: int = CHUNK,
 ) -> list[EvaluationSummary]:
     """Evaluate ``shifts`` in order (re-evaluating any already evaluated), ``chunk`` shifts per
-    write transaction."""
+    write transaction.
+
+    With sequential charts, every later shift that has chart rows is re-evaluated too, in
+    order (``forward`` on its summary). A run of more than one write transaction marks the
+    shifts it has not reached yet due (their current evaluations superseded) in its first
+    commit: a run that is killed or stopped midway leaves them to the next
+    :func:`evaluate_due`, never with results resting on an outdated past.
+    """
     if not shifts:
         return []
+    asked = {s.id for s in shifts}
+    own_stage = extra is None
     if extra is None:  # sequential charts: later shifts with chart values are redone too
         extra = charts.stage_for(engine, config, now=now)
     if hasattr(extra, "expand"):
         shifts = extra.expand(shifts)
     versions = sync_versions(engine, config, now=now, os_user=os_user)
+    run = _Run(engine, config, now, versions, os_user, extra, own_stage and extra is not None)
+    size = max(1, chunk)
     out: list[EvaluationSummary] = []
-    for start in range(0, len(shifts), max(1, chunk)):
-        part = shifts[start:start + max(1, chunk)]
-        if len(part) == 1:
-            out.append(evaluate_shift(engine, config, part[0], now=now, versions=versions,
-                                      os_user=os_user, extra=extra))
-        else:
-            out += _evaluate_chunk(engine, config, part, now=now, versions=versions,
-                                   os_user=os_user, extra=extra)
+    for start in range(0, len(shifts), size):
+        part, rest = shifts[start:start + size], shifts[start + size:]
+        done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
+        out += [_labelled(s, run, asked) for s in done]
         if progress is not None:
             for i in range(len(out) - len(part), len(out)):
                 progress(i + 1, len(shifts), out[i])

@@ -70,6 +70,12 @@ def summary_lines(results: Sequence[Any]) -> list[str]:
     first, last = results[0].shift_id, results[-1].shift_id
     span = first if first == last else f"{first} .. {last}"
     out = [f"Evaluated {len(results)} shift(s) ({span}): {len(ok)} ok, {len(failed)} failed."]
+    forward = [r for r in results if r.forward]
+    if forward:
+        start = next((r.shift_id for r in results if not r.forward), first)
+        out.append(f"  {len(results) - len(forward)} asked for; {len(forward)} later shift(s) "
+                   f"re-evaluated too, because the sequential charts are recomputed forward "
+                   f"from {start}.")
     replaced = sum(1 for r in results if r.superseded_id is not None)
     if replaced:
         out.append(f"  {replaced} earlier evaluation(s) kept as superseded.")
@@ -102,8 +108,10 @@ def evaluate_command(ctx: click.Context, due: bool, shift_id: str | None, since:
     """Evaluate ended shifts: test each line's mix and rate, decide alarms, write the log.
 
     Re-evaluating a shift replaces its results in one transaction; the earlier evaluation is
-    kept, marked superseded. Exit code 1 when an evaluation failed (it is recorded, with a
-    service-fault alarm).
+    kept, marked superseded. With sequential charts every later shift that has chart values is
+    re-evaluated too, in order; if the run is interrupted, the shifts it had not reached are
+    left for the next `evaluate --due` (or the service). Exit code 1 when an evaluation failed
+    (it is recorded, with a service-fault alarm).
     """
     chosen = [name for name, v in (("--due", due), ("--shift", shift_id), ("--since", since)) if v]
     if len(chosen) > 1:
