@@ -24,6 +24,7 @@ from qcfit.cli import main
 from qcfit.config import load_config
 from qcfit.store.engine import make_engine, read_tx
 from qcfit.store.schema import alarm, chart_state, evaluation, finding, shift
+from qcfit.store.shifts import shift_row
 
 ROOT = Path(__file__).resolve().parents[1]
 N = 60  # shifts: a re-evaluation from shift 3 spans three write transactions of CHUNK
@@ -265,5 +266,43 @@ def test_a_failed_shift_in_the_middle_is_retried_with_every_later_shift(
     def still_open(eng):
         return [r for r in alarms(eng, faults=False) if r[2] in ("open", "acknowledged")]
     assert still_open(engine) == still_open(engine_b) != []
+    engine.dispose()
+    engine_b.dispose()
+
+
+def test_a_shift_failing_inside_a_run_fails_alone_and_the_retry_finishes(
+        tmp_path, plant_config_text):
+    """One run of 30 shifts where only shift 12 cannot be written (a real error inside the
+    store): the later shifts go on from the chart rows the store has (not from shift 12's,
+    which were never committed), so they do not fail with it; the retry then redoes 12 and
+    every later shift, and the store equals a run that never failed."""
+    counts = drift_counts(start=8, seed=6)
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    _, config, engine, cal = make_plant(tmp_path / "a", fast(plant_config_text), FAST)
+    _, config_b, engine_b, _ = make_plant(tmp_path / "b", fast(plant_config_text), FAST)
+    work = shifts(cal, 30)
+    now = after(work)
+    load(engine, work, counts)
+    load(engine_b, work, counts)
+    assert all(s.ok for s in service.evaluate_shifts(engine_b, config_b, work, now=now))
+    with read_tx(engine) as conn:
+        row_12 = shift_row(conn, work[12].id).row_id
+    db = tmp_path / "a" / "store.sqlite"
+    with sqlite3.connect(db) as con:
+        con.execute(f"CREATE TRIGGER boom BEFORE INSERT ON finding WHEN NEW.evaluation_id IN "
+                    f"(SELECT id FROM evaluation WHERE shift_id = {row_12}) "
+                    f"BEGIN SELECT RAISE(ABORT, 'injected disk trouble'); END")
+    first = service.evaluate_shifts(engine, config, work, now=now)
+    assert [s.shift_id for s in first if not s.ok] == [work[12].id]
+    with sqlite3.connect(db) as con:
+        con.execute("DROP TRIGGER boom")
+    assert [s.id for s in service.due_shifts(engine, config, now=now)] == [work[12].id]
+    retry = service.evaluate_due(engine, config, now=now)
+    assert [s.shift_id for s in retry] == [s.id for s in work[12:]] and all(s.ok for s in retry)
+    per_shift = current_per_shift(engine)
+    assert len(per_shift) == len(work) and set(per_shift.values()) == {(1, "ok")}
+    assert chart_values(engine) == chart_values(engine_b)
+    assert current_findings(engine) == current_findings(engine_b)
     engine.dispose()
     engine_b.dispose()
