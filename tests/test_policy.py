@@ -14,8 +14,8 @@ from qcfit.config import Thresholds
 from qcfit.evaluate import CategoryShift, Finding
 
 # Benjamini & Hochberg (1995), JRSS-B 57:289-300, section 4 example: 15 p-values; at q = 0.05
-# BH rejects the 4 smallest. Holm and BY reject 3 (statsmodels multipletests, CONFIRMED in the
-# project's reference cases, MT-1). Without adjustment 9 are below 0.05.
+# BH rejects the 4 smallest. Holm and BY reject 3 (statsmodels.stats.multitest.multipletests
+# gives the same). Without adjustment 9 are below 0.05.
 BH_EXAMPLE = [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459,
               0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
 

@@ -341,7 +341,7 @@ def test_production_service_evaluates_in_a_child_that_stops_and_dies_with_it(
 
 
 # ---------------------------------------------------------------------------------------
-# kill -9 at random points (issue: at least 20 kills during a backlog)
+# kill -9 at random points (at least 20 kills during a backlog)
 
 
 @pytest.mark.slow

@@ -12,7 +12,7 @@ from qcfit.stats import poisson_rate_interval, rate_test
 
 def test_r_poisson_test_example_interval():
     # R stats::poisson.test help example "SMR, Welsh Nickel workers": poisson.test(137,
-    # 24.19893) (input SEEN on the R help page); its output, rate 5.661407 and 95% interval
+    # 24.19893) (input as printed on that R help page); its output, rate 5.661407 and 95% interval
     # 4.753125 - 6.692709, is from memory. Cross-checked with the Garwood chi-square formula.
     low, high = poisson_rate_interval(137, 24.19893, 0.95)
     assert low == pytest.approx(4.753125, abs=5e-7)
