@@ -363,8 +363,15 @@ def _mark_due(conn: Any, shifts: Sequence[ShiftInstance], now: dt.datetime) -> M
     """Inside the caller's write transaction: supersede the current evaluation (ok or failed)
     of each of ``shifts``, so that :func:`due_shifts` returns them until they are rewritten."""
     marked: Marks = {}
+    if not shifts:
+        return marked
     at = to_utc_naive(now)
+    first, last = min(s.start for s in shifts), max(s.start for s in shifts)
+    have = esql.current_status_between(conn, to_utc_naive(first),
+                                       to_utc_naive(last) + dt.timedelta(seconds=1))
     for s in shifts:
+        if (s.date, s.name) not in have:  # nothing current (a fresh backfill): nothing to mark
+            continue
         row = shift_row(conn, s.id)
         if row is not None and (old := esql.supersede_current(conn, row.row_id, at)) is not None:
             marked[s.id] = old
