@@ -411,7 +411,7 @@ class _Run:
 
     engine: Any
     config: Any
-    now: dt.datetime
+    run_at: dt.datetime  # the time the run was asked for (passed in, never read here)
     versions: Mapping[str, int]
     os_user: str
     extra: ExtraFindings | None
@@ -420,14 +420,14 @@ class _Run:
 
     def one(self, shift: ShiftInstance, rest: Sequence[ShiftInstance]) -> EvaluationSummary:
         summary, marked = _evaluate_one(
-            self.engine, self.config, shift, now=self.now, versions=self.versions,
+            self.engine, self.config, shift, now=self.run_at, versions=self.versions,
             os_user=self.os_user, extra=self.extra, rest=rest if self.marked is None else ())
         if summary.ok and self.marked is None:
             self.marked = marked
         elif not summary.ok and self.fresh_stage:
             # the stage may hold chart values of the failed shift that never reached the
             # store: later shifts must start from what the store has
-            self.extra = charts.stage_for(self.engine, self.config, now=self.now)
+            self.extra = charts.stage_for(self.engine, self.config, now=self.run_at)
         return summary
 
     def chunk(self, shifts: Sequence[ShiftInstance], rest: Sequence[ShiftInstance]
@@ -437,7 +437,7 @@ class _Run:
         commit also marks ``rest`` due. Any trouble, and the chunk is evaluated shift by
         shift instead, so failures are recorded one by one."""
         t0 = time.perf_counter()
-        config, extra, now = self.config, self.extra, self.now
+        config, extra, now = self.config, self.extra, self.run_at
         to_mark = rest if self.marked is None else ()
         try:
             tables = _read_tables(self.engine, config, shifts)
