@@ -145,11 +145,15 @@ def write_shift_report(engine: Any, config: Any, shift_id: str | None = None, *,
     return path
 
 
+CATCH_UP_REPORTS = 6  # two days at three shifts: what a handover after an outage looks at
+
+
 def write_after_evaluation(engine: Any, config: Any, shift_ids: Sequence[str], *,
                            now: dt.datetime) -> list[Path]:
     """Write the reports of freshly evaluated shifts into ``[report] folder`` (nothing when
-    none is configured). Only the newest ``[report] keep`` of them are written (a catch-up of
-    many shifts would delete the older pages again at once). Failures are logged, never
+    none is configured). Only the newest ``min([report] keep, CATCH_UP_REPORTS)`` of them are
+    written: a catch-up after an outage should not spend minutes drawing pages of shifts long
+    past (``qcfit report --shift ID`` makes any of them on demand). Failures are logged, never
     raised. Returns the paths written."""
     folder = report_folder(config)
     if folder is None:
@@ -157,7 +161,7 @@ def write_after_evaluation(engine: Any, config: Any, shift_ids: Sequence[str], *
     order = _order(config)
     newest = sorted(dict.fromkeys(shift_ids), key=lambda sid: _shift_key(sid, order))
     written = []
-    for shift_id in newest[-max(1, int(config.report.keep)):]:
+    for shift_id in newest[-max(1, min(int(config.report.keep), CATCH_UP_REPORTS)):]:
         try:
             written.append(write_shift_report(engine, config, shift_id, now=now, folder=folder))
         except Exception as exc:  # a report must never fail a committed evaluation
