@@ -134,7 +134,7 @@ _SAMPLER_CACHE = 4  # at most ~20 MB of tables for 10 categories
 def multinomial_sampler(p: np.ndarray, n: int) -> MultinomialSampler:
     """A :class:`MultinomialSampler` for ``p`` and totals up to at least ``n`` (kept for reuse:
     the tables depend only on ``p`` and the size; the draws only on the generator passed in)."""
-    size = max(256, 1 << int(n).bit_length())
+    size = max(16, 1 << int(n).bit_length())  # draws do not depend on the size, only set-up
     key = (np.ascontiguousarray(p, dtype=float).tobytes(), size)
     found = _SAMPLERS.get(key)
     if found is None:
