@@ -544,7 +544,11 @@ class ChartStage:
             return []
         start = to_utc_naive(shift.start)
         with read_tx(self.engine) as conn:
-            stored = sql.latest_before(conn, lines, start)
+            # chart values are read only for lines this run has no newer values of
+            newest = sql.latest_starts_before(conn, lines, start)
+            stored = sql.latest_before(conn, [ln for ln in lines if ln in newest
+                                              and not self._newer_here(ln, start, newest[ln])],
+                                       start)
             totals = sql.line_totals(conn, lines, start, N_WINDOW)
             marks = sql.marks_at(conn, lines, start)
         out: list[ev.Finding] = []
@@ -595,6 +599,11 @@ class ChartStage:
         found = line_finding(plan, ls, lim, chain, dict(self.config.categories))
         return found, _Done(to_utc_naive(shift.start), shift.id,
                             prior.shift_id if prior else None, ls.rows)
+
+    def _newer_here(self, line: str, start: dt.datetime, stored_start: dt.datetime) -> bool:
+        """True when :meth:`_prior` would take this run's values over the store's."""
+        mine = [d for d in self._done.get(line, []) if d.start < start]
+        return bool(mine) and mine[-1].start >= stored_start
 
     def _prior(self, line: str, start: dt.datetime, stored: Any) -> PriorCharts | None:
         mine = [d for d in self._done.get(line, []) if d.start < start]
@@ -679,16 +688,16 @@ class ChartStage:
 
         start = to_utc_naive(shift.start)
         pending = self._pending.pop(shift.id, {})
-        stored = sql.latest_before(conn, list(pending), start)
+        stored = sql.latest_ids_before(conn, list(pending), start)
         for line, done in pending.items():
-            latest = stored.get(line)
-            have = latest.shift_id if latest is not None else None
+            have = stored.get(line)
             if have != done.prior_id:
                 self._done.pop(line, None)
                 raise StoreError(f"chart state of line {line} changed while shift {shift.id} "
                                  f"was computed (started from {done.prior_id}, the store has "
                                  f"{have}); evaluate again")
-            sql.write_states(conn, shift_row_id, line, done.rows)
+        sql.write_states_many(conn, shift_row_id,
+                              {line: done.rows for line, done in pending.items()})
 
     # -- order ----------------------------------------------------------------------------
 

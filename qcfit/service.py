@@ -173,6 +173,10 @@ def _clean(value: Any) -> Any:
         return value if math.isfinite(value) else None
     if kind is str or kind is int or kind is bool or value is None:
         return value
+    if kind is dict:  # the common containers first (an ABC check is slow)
+        return {str(k): _clean(v) for k, v in value.items()}
+    if kind is list or kind is tuple:
+        return [_clean(v) for v in value]
     if isinstance(value, float | np.floating):
         v = float(value)
         return v if math.isfinite(v) else None

@@ -347,7 +347,7 @@ def test_production_service_evaluates_in_a_child_that_stops_and_dies_with_it(
 @pytest.mark.slow
 def test_kill_9_at_random_points_loses_and_duplicates_nothing(
         zygote, tmp_path, plant_config_text, backend_url):
-    bl = Backlog(tmp_path, plant_text(plant_config_text), backend_url, days=80)
+    bl = Backlog(tmp_path, plant_text(plant_config_text), backend_url, days=320)
     rng = random.Random(20261202)
     kills = progressed = 0
     try:

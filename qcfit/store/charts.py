@@ -92,6 +92,46 @@ def latest_before(conn: Connection, lines: Sequence[str], before_utc: dt.datetim
     return _group(r for r in rows if (r.line, _naive(r.start_utc)) in want)
 
 
+def latest_starts_before(conn: Connection, lines: Sequence[str], before_utc: dt.datetime
+                         ) -> dict[str, dt.datetime]:
+    """Per line, the start of the latest shift before ``before_utc`` with its chart rows."""
+    if not lines:
+        return {}
+    found = conn.execute(
+        select(chart_state.c.line, func.max(shift.c.start_utc))
+        .join(shift, shift.c.id == chart_state.c.shift_id)
+        .where(chart_state.c.line.in_(list(lines)), shift.c.start_utc < before_utc)
+        .group_by(chart_state.c.line)).all()
+    return {ln: _naive(start) for ln, start in found}
+
+
+def latest_ids_before(conn: Connection, lines: Sequence[str], before_utc: dt.datetime
+                      ) -> dict[str, str]:
+    """Per line, the shift id of its latest chart rows before ``before_utc`` (as
+    :func:`latest_before`, without reading the chart values)."""
+    if not lines:
+        return {}
+    found = conn.execute(
+        select(chart_state.c.line, func.max(shift.c.start_utc))
+        .join(shift, shift.c.id == chart_state.c.shift_id)
+        .where(chart_state.c.line.in_(list(lines)), shift.c.start_utc < before_utc)
+        .group_by(chart_state.c.line)).all()
+    if not found:
+        return {}
+    starts = {_naive(start) for _, start in found}
+    rows = conn.execute(
+        select(chart_state.c.line, shift.c.start_utc, shift.c.shift_date, shift.c.shift_name)
+        .join(shift, shift.c.id == chart_state.c.shift_id)
+        .where(chart_state.c.line.in_([ln for ln, _ in found]),
+               shift.c.start_utc.in_(sorted(starts))))
+    want = {(ln, _naive(start)) for ln, start in found}
+    out: dict[str, str] = {}
+    for r in rows:
+        if (r.line, _naive(r.start_utc)) in want:
+            out.setdefault(r.line, format_shift_id(_date(r.shift_date), r.shift_name))
+    return out
+
+
 def states_at(conn: Connection, shift_row_id: int, lines: Sequence[str] | None = None
               ) -> dict[str, StoredCharts]:
     """Per line, its chart rows at one shift."""
@@ -158,6 +198,32 @@ def write_states(conn: Connection, shift_row_id: int, line: str,
                        "baseline_version_id": r.get("baseline_version_id"), "state": state,
                        "statistic": r.get("statistic"), "threshold": r.get("threshold")})
     conn.execute(insert(chart_state), values)
+
+
+def write_states_many(conn: Connection, shift_row_id: int,
+                      by_line: Mapping[str, Sequence[Mapping[str, Any]]]) -> None:
+    """:func:`write_states` for several lines at one shift: one read of the rows replaced,
+    one delete and one executemany insert (rows in ``by_line`` order)."""
+    if not by_line:
+        return
+    lines = list(by_line)
+    old = states_at(conn, shift_row_id, lines)
+    conn.execute(delete(chart_state).where(chart_state.c.line.in_(lines),
+                                           chart_state.c.shift_id == shift_row_id))
+    values = []
+    for line, rows in by_line.items():
+        g = old.get(line)
+        mark = g.reset_after if g is not None else None
+        for r in rows:
+            state = dict(r["state"])
+            if mark:
+                state[RESET_KEY] = mark
+            values.append({"line": line, "chart": r["chart"], "shift_id": shift_row_id,
+                           "baseline_version_id": r.get("baseline_version_id"),
+                           "state": state, "statistic": r.get("statistic"),
+                           "threshold": r.get("threshold")})
+    if values:
+        conn.execute(insert(chart_state), values)
 
 
 def mark_reset(conn: Connection, line: str, note: str) -> str | None:
