@@ -76,19 +76,12 @@ def _rows_select():
 def latest_before(conn: Connection, lines: Sequence[str], before_utc: dt.datetime
                   ) -> dict[str, StoredCharts]:
     """Per line, its chart rows at the latest shift that starts before ``before_utc``."""
-    if not lines:
-        return {}
-    found = conn.execute(
-        select(chart_state.c.line, func.max(shift.c.start_utc))
-        .join(shift, shift.c.id == chart_state.c.shift_id)
-        .where(chart_state.c.line.in_(list(lines)), shift.c.start_utc < before_utc)
-        .group_by(chart_state.c.line)).all()
+    found = latest_starts_before(conn, lines, before_utc)
     if not found:
         return {}
-    starts = {_naive(start) for _, start in found}
-    rows = conn.execute(_rows_select().where(chart_state.c.line.in_([ln for ln, _ in found]),
-                                             shift.c.start_utc.in_(sorted(starts))))
-    want = {(ln, _naive(start)) for ln, start in found}
+    rows = conn.execute(_rows_select().where(chart_state.c.line.in_(list(found)),
+                                             shift.c.start_utc.in_(sorted(set(found.values())))))
+    want = set(found.items())
     return _group(r for r in rows if (r.line, _naive(r.start_utc)) in want)
 
 
@@ -109,22 +102,15 @@ def latest_ids_before(conn: Connection, lines: Sequence[str], before_utc: dt.dat
                       ) -> dict[str, str]:
     """Per line, the shift id of its latest chart rows before ``before_utc`` (as
     :func:`latest_before`, without reading the chart values)."""
-    if not lines:
-        return {}
-    found = conn.execute(
-        select(chart_state.c.line, func.max(shift.c.start_utc))
-        .join(shift, shift.c.id == chart_state.c.shift_id)
-        .where(chart_state.c.line.in_(list(lines)), shift.c.start_utc < before_utc)
-        .group_by(chart_state.c.line)).all()
+    found = latest_starts_before(conn, lines, before_utc)
     if not found:
         return {}
-    starts = {_naive(start) for _, start in found}
     rows = conn.execute(
         select(chart_state.c.line, shift.c.start_utc, shift.c.shift_date, shift.c.shift_name)
         .join(shift, shift.c.id == chart_state.c.shift_id)
-        .where(chart_state.c.line.in_([ln for ln, _ in found]),
-               shift.c.start_utc.in_(sorted(starts))))
-    want = {(ln, _naive(start)) for ln, start in found}
+        .where(chart_state.c.line.in_(list(found)),
+               shift.c.start_utc.in_(sorted(set(found.values())))))
+    want = set(found.items())
     out: dict[str, str] = {}
     for r in rows:
         if (r.line, _naive(r.start_utc)) in want:
@@ -179,31 +165,11 @@ def latest_start(conn: Connection) -> dt.datetime | None:
     return None if value is None else _naive(value)
 
 
-def write_states(conn: Connection, shift_row_id: int, line: str,
-                 rows: Sequence[Mapping[str, Any]]) -> None:
-    """Replace the line's chart rows at one shift (each row: chart, baseline_version_id, state,
-    statistic, threshold). A reset mark on the rows replaced is kept."""
-    old = states_at(conn, shift_row_id, [line]).get(line)
-    mark = old.reset_after if old is not None else None
-    conn.execute(delete(chart_state).where(chart_state.c.line == line,
-                                           chart_state.c.shift_id == shift_row_id))
-    if not rows:
-        return
-    values = []
-    for r in rows:
-        state = dict(r["state"])
-        if mark:
-            state[RESET_KEY] = mark
-        values.append({"line": line, "chart": r["chart"], "shift_id": shift_row_id,
-                       "baseline_version_id": r.get("baseline_version_id"), "state": state,
-                       "statistic": r.get("statistic"), "threshold": r.get("threshold")})
-    conn.execute(insert(chart_state), values)
-
-
 def write_states_many(conn: Connection, shift_row_id: int,
                       by_line: Mapping[str, Sequence[Mapping[str, Any]]]) -> None:
-    """:func:`write_states` for several lines at one shift: one read of the rows replaced,
-    one delete and one executemany insert (rows in ``by_line`` order)."""
+    """Replace the chart rows of several lines at one shift (each row: chart,
+    baseline_version_id, state, statistic, threshold); a reset mark on the rows replaced is
+    kept. One read of the rows replaced, one delete, one executemany insert."""
     if not by_line:
         return
     lines = list(by_line)
