@@ -109,28 +109,30 @@ def shift_seed(base_seed: int, shift_id: str) -> int:
 # reading
 
 
-def _table_in(conn: Any, config: Any, shift: ShiftInstance) -> CountTable:
-    from qcfit.store.defects import shift_table
+def _tables_in(conn: Any, config: Any, shifts: Sequence[ShiftInstance]) -> list[CountTable]:
+    from qcfit.store.defects import shift_tables
+    from qcfit.store.shifts import shift_rows_of
 
     lines = tuple(config.lines)
     categories = tuple(config.categories)
-    row = shift_row(conn, shift.id)
-    if row is None:
-        counts = np.zeros((len(lines), len(categories)), dtype=np.int64)
-        units = np.full(len(lines), np.nan)
-    else:
-        counts, units = shift_table(conn, row.row_id, lines, categories)
-    counts = np.array(counts, dtype=np.int64)
-    units = np.array(units, dtype=float)
-    counts.setflags(write=False)
-    units.setflags(write=False)
-    return CountTable(shift, lines, categories, counts, units)
+    rows = shift_rows_of(conn, [s.id for s in shifts])
+    stored = shift_tables(conn, [r.row_id for r in rows.values()], lines, categories)
+    empty_counts = np.zeros((len(lines), len(categories)), dtype=np.int64)
+    empty_units = np.full(len(lines), np.nan)
+    for a in (empty_counts, empty_units):
+        a.setflags(write=False)
+    out = []
+    for s in shifts:
+        row = rows.get(s.id)
+        counts, units = stored[row.row_id] if row is not None else (empty_counts, empty_units)
+        out.append(CountTable(s, lines, categories, counts, units))
+    return out
 
 
 def _read_tables(engine: Any, config: Any, shifts: Sequence[ShiftInstance]) -> list[CountTable]:
     """The count tables of ``shifts``, read in one read transaction."""
     with read_tx(engine) as conn:
-        return [_table_in(conn, config, s) for s in shifts]
+        return _tables_in(conn, config, shifts)
 
 
 def _baselines(config: Any, versions: Mapping[str, int], table: CountTable
@@ -166,36 +168,26 @@ def sync_versions(engine: Any, config: Any, *, now: dt.datetime, os_user: str = 
 # writing
 
 
-def _clean(value: Any) -> Any:
-    """JSON-safe: non-finite floats -> None, numpy scalars -> Python, tuples -> lists."""
-    kind = type(value)
-    if kind is float:
-        return value if math.isfinite(value) else None
-    if kind is str or kind is int or kind is bool or value is None:
-        return value
-    if kind is dict:  # the common containers first (an ABC check is slow)
-        return {str(k): _clean(v) for k, v in value.items()}
-    if kind is list or kind is tuple:
-        return [_clean(v) for v in value]
-    if isinstance(value, float | np.floating):
-        v = float(value)
-        return v if math.isfinite(v) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, Mapping):
-        return {str(k): _clean(v) for k, v in value.items()}
-    if isinstance(value, list | tuple | np.ndarray):
-        return [_clean(v) for v in value]
-    return value
+def _opt_float(value: Any) -> float | None:
+    """A float column's value: None for missing or non-finite, numpy scalars made plain."""
+    if value is None:
+        return None
+    value = float(value)
+    return value if math.isfinite(value) else None
 
 
-def _floats(values: Sequence[float]) -> list[float | None]:
-    return [float(v) if math.isfinite(v) else None for v in values]
+def _opt_int(value: Any) -> int | None:
+    return None if value is None else int(value)
 
 
 def finding_row(f: ev.Finding) -> dict[str, Any]:
-    """A finding as a ``finding`` table row (reason, figures and words go into ``details``)."""
-    details = _clean({
+    """A finding as a ``finding`` table row (reason, figures and words go into ``details``).
+
+    The JSON columns are handed to the store's JSON text writer
+    (:mod:`qcfit.store.jsontext`), which writes numpy values as plain numbers and non-finite
+    floats as null.
+    """
+    details = {
         "reason": f.reason,
         "severity": f.severity,
         "effect_name": f.effect_name,
@@ -205,30 +197,29 @@ def finding_row(f: ev.Finding) -> dict[str, Any]:
         "power_needed": f.power_needed,
         "mc_se": f.mc_se,
         "extra": f.details,
-    })
-    row = _clean({
+        "categories": list(f.categories),
+        "observed": list(map(float, f.observed)),
+        "expected": list(map(float, f.expected)),
+        "adjusted_residuals": list(map(float, f.adjusted_residuals)),
+    }
+    return {
         "kind": f.kind,
         "line": f.line,
-        "baseline_version_id": f.baseline_version_id,
+        "baseline_version_id": _opt_int(f.baseline_version_id),
         "verdict": f.verdict,
-        "statistic": f.statistic,
-        "dof": f.dof,
-        "pvalue": f.pvalue,
-        "adjusted_pvalue": f.adjusted_pvalue,
-        "effect_size": f.effect_size,
+        "statistic": _opt_float(f.statistic),
+        "dof": _opt_int(f.dof),
+        "pvalue": _opt_float(f.pvalue),
+        "adjusted_pvalue": _opt_float(f.adjusted_pvalue),
+        "effect_size": _opt_float(f.effect_size),
         "method": f.method,
         "method_reason": f.method_reason,
-        "n": f.n,
-        "min_expected": f.min_expected,
-        "power": f.power,
-    })
-    row["top_categories"] = [c.as_json() for c in f.top_categories]  # JSON-safe already
-    details["categories"] = list(f.categories)
-    details["observed"] = _floats(f.observed)
-    details["expected"] = _floats(f.expected)
-    details["adjusted_residuals"] = _floats(f.adjusted_residuals)
-    row["details"] = details
-    return row
+        "n": _opt_int(f.n),
+        "min_expected": _opt_float(f.min_expected),
+        "power": _opt_float(f.power),
+        "top_categories": [c.as_json() for c in f.top_categories],
+        "details": details,
+    }
 
 
 _CROSSING_VERDICTS = frozenset({policy.WATCH, policy.ALARM, ev.IMPOSSIBLE})

@@ -13,7 +13,7 @@ import pytest
 
 from qcfit.errors import InputFileError, InvalidArgumentError
 from qcfit.ingest import load_counts_file, load_events_file
-from qcfit.store.defects import read_counts, shift_table
+from qcfit.store.defects import read_counts, shift_table, shift_tables
 from qcfit.store.engine import read_tx
 from qcfit.store.shifts import shift_row
 
@@ -191,7 +191,14 @@ def test_counts_file_with_units(plant_store, tmp_path):
     with read_tx(plant_store.engine) as conn:
         row = shift_row(conn, "2026-01-05_A")
         counts, units = shift_table(conn, row.row_id, ["L1", "L2"], ["SCR", "DNT", "FL"])
+        row_b = shift_row(conn, "2026-01-05_B")
+        both = shift_tables(conn, [row_b.row_id, row.row_id], ["L1", "L2"], ["SCR", "DNT", "FL"])
     assert counts.tolist() == [[12, 0, 0], [0, 0, 0]]
+    # several shifts read at once give what each shift's own read gives
+    assert both[row.row_id][0].tolist() == counts.tolist()
+    assert both[row_b.row_id][0].tolist() == [[0, 0, 0], [3, 0, 0]]
+    assert np.array_equal(both[row.row_id][1], units, equal_nan=True)
+    assert np.isnan(both[row_b.row_id][1]).all() and not both[row_b.row_id][0].flags.writeable
     assert units[0] == 4800.0 and np.isnan(units[1])
     assert not counts.flags.writeable and not units.flags.writeable
     assert row.start == dt.datetime(2026, 1, 5, 12, tzinfo=dt.UTC) and row.end == dt.datetime(

@@ -14,7 +14,7 @@ from sqlalchemy.engine import make_url
 
 from qcfit.config import load_config
 from qcfit.ingest import load_counts_file, load_events_file
-from qcfit.store.defects import read_counts, read_events, shift_table
+from qcfit.store.defects import read_counts, read_events, shift_table, shift_tables
 from qcfit.store.engine import make_engine, read_tx
 from qcfit.store.migrate import init_store
 from qcfit.store.shifts import shift_row
@@ -73,6 +73,7 @@ def test_fall_back_night_round_trip_on_postgresql(pg_store, tmp_path):
         row = shift_row(conn, "2026-10-31_C")
         events = read_events(conn, [row.row_id])
         counts, units = shift_table(conn, row.row_id, ["L1", "L2"], ["SCR", "DNT"])
+        many = shift_tables(conn, [row.row_id], ["L1", "L2"], ["SCR", "DNT"])
         frame = read_counts(conn, tz=config.timezone)
     assert sorted(events["ts_utc"].tolist()) == [
         np.datetime64("2026-11-01T06:30:00", "us"),
@@ -80,6 +81,7 @@ def test_fall_back_night_round_trip_on_postgresql(pg_store, tmp_path):
         np.datetime64("2026-11-01T11:59:59.500000", "us"),
     ]
     assert counts.tolist() == [[3, 0], [0, 1]] and np.isnan(units).all()
+    assert many[row.row_id][0].tolist() == counts.tolist() and np.isnan(many[row.row_id][1]).all()
     assert (row.end - row.start) == dt.timedelta(hours=9)
     assert frame["shift_end"].iloc[0].isoformat() == "2026-11-01T06:00:00-06:00"
 

@@ -542,6 +542,44 @@ def shift_table(
     return counts, units
 
 
+def shift_tables(
+    conn: Connection, shift_row_ids: Sequence[int], lines: Sequence[str], categories: Sequence[str]
+) -> dict[int, tuple[np.ndarray, np.ndarray]]:
+    """:func:`shift_table` of several shifts at once (one query per table and chunk of shifts):
+    shift row id -> (int64 (L, K) counts, float64 (L,) units), arrays read-only."""
+    ids = sorted({int(i) for i in shift_row_ids})
+    where = {sid: j for j, sid in enumerate(ids)}
+    line_index, cat_index = pd.Index(list(lines)), pd.Index(list(categories))
+    counts = np.zeros((len(ids), len(lines), len(categories)), dtype=np.int64)
+    units = np.full((len(ids), len(lines)), np.nan, dtype=np.float64)
+    for start in range(0, len(ids), _IN_CHUNK):
+        part = ids[start : start + _IN_CHUNK]
+        rows = conn.execute(
+            select(defect_count.c.shift_id, defect_count.c.line, defect_count.c.category,
+                   defect_count.c["count"]).where(defect_count.c.shift_id.in_(part))).all()
+        if rows:
+            sid, line_code, cat, value = zip(*rows, strict=True)
+            s = np.fromiter((where[x] for x in sid), dtype=np.intp, count=len(rows))
+            i, k = line_index.get_indexer(line_code), cat_index.get_indexer(cat)
+            keep = (i >= 0) & (k >= 0)  # codes not asked for are left out
+            counts[s[keep], i[keep], k[keep]] = np.asarray(value, dtype=np.int64)[keep]
+        rows = conn.execute(
+            select(units_inspected.c.shift_id, units_inspected.c.line, units_inspected.c.units)
+            .where(units_inspected.c.shift_id.in_(part))).all()
+        if rows:
+            sid, line_code, value = zip(*rows, strict=True)
+            s = np.fromiter((where[x] for x in sid), dtype=np.intp, count=len(rows))
+            i = line_index.get_indexer(line_code)
+            keep = i >= 0
+            units[s[keep], i[keep]] = np.asarray(value, dtype=np.float64)[keep]
+    counts.setflags(write=False)
+    units.setflags(write=False)
+    return {sid: (counts[j], units[j]) for sid, j in where.items()}
+
+
+_IN_CHUNK = 400  # shift ids per IN (...) list
+
+
 # --- pulling from another database --------------------------------------------------------
 
 

@@ -282,8 +282,11 @@ def _why_unopenable(path: Path) -> str:
 
 
 def _create(url: URL, info: StoreInfo, **kwargs: Any) -> Engine:
+    from qcfit.store import jsontext
+
     try:
-        return create_engine(url, **kwargs)
+        return create_engine(url, json_serializer=jsontext.dumps,
+                             json_deserializer=jsontext.loads, **kwargs)
     except (ImportError, sa_exc.NoSuchModuleError) as exc:
         if info.dialect == "postgresql":
             raise StoreError(

@@ -122,6 +122,13 @@ def shift_row(conn: Connection, shift_id: str) -> ShiftRow | None:
     return _existing(conn, [(date, name)]).get(format_shift_id(date, name))
 
 
+def shift_rows_of(conn: Connection, shift_ids: Iterable[str]) -> dict[str, ShiftRow]:
+    """The stored rows of the shifts ``2026-01-05_A``, ... (shift id -> row; absent ones left
+    out), in one query per hundred or so shifts. InvalidArgumentError for a bad id."""
+    keys = sorted({parse_shift_id(sid) for sid in shift_ids})
+    return _existing(conn, keys)
+
+
 def shift_rows(conn: Connection, row_ids: Iterable[int]) -> dict[int, ShiftRow]:
     """Stored shift rows by ``shift.id``."""
     ids = sorted({int(i) for i in row_ids})
