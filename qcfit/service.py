@@ -135,16 +135,29 @@ def _read_tables(engine: Any, config: Any, shifts: Sequence[ShiftInstance]) -> l
         return _tables_in(conn, config, shifts)
 
 
-def _baselines(config: Any, versions: Mapping[str, int], table: CountTable
+BaselineMemo = dict[tuple[str, dt.date], tuple[BaselineRef | None, str | None]]
+
+
+def _baselines(config: Any, versions: Mapping[str, int], table: CountTable,
+               memo: BaselineMemo | None = None
                ) -> tuple[dict[str, BaselineRef | None], dict[str, str]]:
+    """Each line's baseline in force for the table's shift (``memo``: a run's answers by line
+    and shift date, so the shifts of one day share them and their BaselineRef objects)."""
     found: dict[str, BaselineRef | None] = {}
     problems: dict[str, str] = {}
+    memo = {} if memo is None else memo
+    day = table.shift.date
     for line in table.lines:
-        try:
-            found[line] = baseline_in_force(config, versions, line, table.shift)
-        except BaselineError as exc:
-            found[line] = None
-            problems[line] = str(exc)
+        hit = memo.get((line, day))
+        if hit is None:
+            try:
+                hit = (baseline_in_force(config, versions, line, table.shift), None)
+            except BaselineError as exc:
+                hit = (None, str(exc))
+            memo[(line, day)] = hit
+        found[line] = hit[0]
+        if hit[1] is not None:
+            problems[line] = hit[1]
     return found, problems
 
 
@@ -258,9 +271,12 @@ def _evaluation_row(config: Any, shift_row_id: int, status: str, seed: int, star
 
 
 def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
-               seed: int, now: dt.datetime, t0: float, extra: Any = None) -> EvaluationSummary:
-    """Decide and write one shift's evaluation inside the caller's write transaction."""
-    row_id = ensure_shifts(conn, [shift])[shift.id]
+               seed: int, now: dt.datetime, t0: float, extra: Any = None,
+               row_id: int | None = None) -> EvaluationSummary:
+    """Decide and write one shift's evaluation inside the caller's write transaction
+    (``row_id``: the shift's row, when the caller has made sure of it)."""
+    if row_id is None:
+        row_id = ensure_shifts(conn, [shift])[shift.id]
     active = alarmlog.active_alarms(conn, row_id)
     decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
                             history=_history(conn, config, shift), names=dict(config.categories))
@@ -314,8 +330,9 @@ def _record_failure(engine: Any, config: Any, shift: ShiftInstance, exc: BaseExc
 
 
 def _compute(config: Any, versions: Mapping[str, int], table: CountTable, seed: int,
-             extra: ExtraFindings | None) -> tuple[ev.Finding, ...]:
-    baselines, problems = _baselines(config, versions, table)
+             extra: ExtraFindings | None, memo: BaselineMemo | None = None
+             ) -> tuple[ev.Finding, ...]:
+    baselines, problems = _baselines(config, versions, table, memo)
     more = tuple(extra(table, baselines)) if extra is not None else ()
     findings = ev.evaluate_table(table, baselines, config.thresholds, seed=seed, extra=more)
     return tuple(_with_problems(findings, problems))
@@ -412,6 +429,7 @@ class _Run:
     extra: ExtraFindings | None
     fresh_stage: bool  # the chart stage is ours: start a new one after a failed shift
     marked: Marks | None = None  # None until the first commit marked the rest of the run
+    memo: BaselineMemo = dataclasses.field(default_factory=dict)  # baselines by line and day
 
     def one(self, shift: ShiftInstance, rest: Sequence[ShiftInstance]) -> EvaluationSummary:
         summary, marked = _evaluate_one(
@@ -437,12 +455,14 @@ class _Run:
         try:
             tables = _read_tables(self.engine, config, shifts)
             work = [(s, shift_seed(config.thresholds.seed, s.id)) for s in shifts]
-            computed = [(s, seed, _compute(config, self.versions, t, seed, extra))
+            computed = [(s, seed, _compute(config, self.versions, t, seed, extra, self.memo))
                         for (s, seed), t in zip(work, tables, strict=True)]
-            out, marked = run_write(self.engine, lambda conn: (
-                [_write_one(conn, config, s, found, seed, now, t0, extra)
-                 for s, seed, found in computed],
-                _mark_due(conn, to_mark, now)))
+            def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
+                ids = ensure_shifts(conn, shifts)
+                return ([_write_one(conn, config, s, found, seed, now, t0, extra, ids[s.id])
+                         for s, seed, found in computed], _mark_due(conn, to_mark, now))
+
+            out, marked = run_write(self.engine, write)
         except Exception as exc:
             log.warning("evaluating %d shifts together failed (%s); going shift by shift",
                         len(shifts), _error_text(exc))
