@@ -222,8 +222,15 @@ def active_alarms(conn: Any, shift_row_id: int | None = None) -> list[ActiveAlar
     raised by it or spanning it, each marked relative to it (raised or crossed later)."""
     if shift_row_id is None:
         return [_active(r) for r in sql.select_alarms(conn, states=ACTIVE_STATES)]
+    return active_alarms_with_rows(conn, shift_row_id)[0]
+
+
+def active_alarms_with_rows(conn: Any, shift_row_id: int
+                            ) -> tuple[list[ActiveAlarm], dict[int, dict[str, Any]]]:
+    """:func:`active_alarms` of a shift, and their stored rows by id (to hand to
+    :func:`apply_decisions` in the same transaction, which then need not read them again)."""
     rows, start = sql.alarms_around_shift(conn, shift_row_id)
-    return [_active(r, start) for r in rows]
+    return [_active(r, start) for r in rows], {int(r["id"]): r for r in rows}
 
 
 # ---------------------------------------------------------------------------------------
@@ -263,16 +270,37 @@ def _details(d: AlarmDecision, old: Mapping[str, Any] | None = None) -> dict[str
     return base
 
 
+@dataclass(slots=True)
+class _ShiftEvents:
+    """Raise/update events of one shift: the alarms given one in this apply, and whether the
+    store had none of that shift before it (then it need not be asked)."""
+
+    fresh: bool
+    alarms: set[int] = field(default_factory=set)
+
+
 def _event(conn: Any, alarm_id: int, action: str, *, now_utc: dt.datetime, shift_row: int | None,
-           from_state: str | None, to_state: str, note: str | None, by: str = SYSTEM_USER) -> None:
+           from_state: str | None, to_state: str, note: str | None, by: str = SYSTEM_USER,
+           seen: _ShiftEvents | None = None) -> None:
     # one event per alarm and shift: re-applying a shift (or updating by the shift that
     # raised the alarm) adds none
-    if shift_row is not None and action in (RAISE, UPDATE) and sql.has_event(
+    once = shift_row is not None and action in (RAISE, UPDATE)
+    if once and seen is not None and alarm_id in seen.alarms:
+        return
+    if once and (seen is None or not seen.fresh) and sql.has_event(
             conn, alarm_id, (RAISE, UPDATE), shift_row):
         return
     sql.insert_event(conn, {"alarm_id": alarm_id, "at_utc": now_utc, "action": action, "by": by,
                             "note": note, "from_state": from_state, "to_state": to_state,
                             "shift_id": shift_row})
+    if once and seen is not None:
+        seen.alarms.add(alarm_id)
+
+
+def shifts_with_events(conn: Any, shift_row_ids: Sequence[int]) -> set[int]:
+    """Which of the shifts already have a raise or update event (the others are ``fresh`` for
+    :func:`apply_decisions`)."""
+    return sql.shifts_with_events(conn, shift_row_ids, (RAISE, UPDATE))
 
 
 def apply_decisions(
@@ -282,13 +310,19 @@ def apply_decisions(
     shift_row_id: int | None,
     shift_start_utc: dt.datetime | None,
     now: dt.datetime,
+    rows: Mapping[int, Mapping[str, Any]] | None = None,
+    fresh: bool = False,
 ) -> Applied:
-    """Write one shift's decisions in the caller's transaction (idempotent)."""
+    """Write one shift's decisions in the caller's transaction (idempotent). ``rows``: alarm
+    rows read earlier in this transaction (:func:`active_alarms_with_rows`), by id; each is
+    used at most once, before anything here changed that alarm. ``fresh``: the caller knows
+    the store has no raise/update event of this shift yet (see :func:`shifts_with_events`)."""
     now_utc = to_utc_naive(now)
     opened: list[int] = []
     updated: list[int] = []
     cleared: list[int] = []
-    ctx = (conn, shift_row_id, shift_start_utc, now_utc)
+    ctx = (conn, shift_row_id, shift_start_utc, now_utc, dict(rows or {}),
+           _ShiftEvents(fresh and shift_row_id is not None))
     for d in decisions:
         if d.action == RAISE:
             alarm_id, new = _raise(ctx, d)
@@ -304,12 +338,13 @@ def apply_decisions(
 
 
 def _raise(ctx: tuple, d: AlarmDecision) -> tuple[int, bool]:
-    conn, shift_row, _start, now_utc = ctx
+    conn, shift_row, _start, now_utc, rows, seen = ctx
     key = (shift_row or 0, d.line or "", d.kind, d.baseline_version_id or 0)
     existing = sql.find_by_key(conn, *key)
     if existing is not None and shift_row is None and existing["state"] == CLEARED:
         return _reopen(ctx, existing, d), True
     if existing is not None:  # the same shift applied again: refresh figures, keep the state
+        rows.pop(int(existing["id"]), None)
         sql.update_alarm(conn, existing["id"], _figures(d) | {
             "details": _details(d, existing.get("details")), "updated_utc": now_utc})
         return int(existing["id"]), False
@@ -320,7 +355,7 @@ def _raise(ctx: tuple, d: AlarmDecision) -> tuple[int, bool]:
         "state": OPEN, "shift_count": 1, "in_control_streak": 0,
         "details": _details(d), "opened_utc": now_utc, "updated_utc": now_utc,
     })
-    _event(conn, alarm_id, RAISE, now_utc=now_utc, shift_row=shift_row, from_state=None,
+    _event(conn, alarm_id, RAISE, now_utc=now_utc, shift_row=shift_row, from_state=None, seen=seen,
            to_state=OPEN, note=d.summary)
     return alarm_id, True
 
@@ -329,7 +364,8 @@ def _reopen(ctx: tuple, row: Mapping[str, Any], d: AlarmDecision) -> int:
     """A new fault tied to no shift after the plant-wide one was cleared: such faults share one
     key, so the cleared alarm is opened again (``opened`` becomes now; the history keeps the
     earlier opening and clearing) and reads as new."""
-    conn, _shift_row, _start, now_utc = ctx
+    conn, _shift_row, _start, now_utc, rows, _seen = ctx
+    rows.pop(int(row["id"]), None)
     sql.update_alarm(conn, row["id"], _figures(d) | {
         "state": OPEN, "shift_count": 1, "in_control_streak": 0, "details": _details(d),
         "opened_utc": now_utc, "updated_utc": now_utc})
@@ -338,8 +374,13 @@ def _reopen(ctx: tuple, row: Mapping[str, Any], d: AlarmDecision) -> int:
     return int(row["id"])
 
 
-def _load(conn: Any, alarm_id: int | None) -> dict[str, Any]:
-    row = sql.get_alarm(conn, int(alarm_id)) if alarm_id is not None else None
+def _load(ctx: tuple, alarm_id: int | None) -> dict[str, Any]:
+    """The alarm's row: the one read before (then forgotten: it is about to change), else
+    from the store."""
+    conn, rows = ctx[0], ctx[4]
+    row = rows.pop(int(alarm_id), None) if alarm_id is not None else None
+    if row is None and alarm_id is not None:
+        row = sql.get_alarm(conn, int(alarm_id))
     if row is None:
         raise NotFoundError("alarm", alarm_id)
     return row
@@ -355,8 +396,8 @@ def _is_latest(row: Mapping[str, Any], shift_start: dt.datetime | None) -> bool:
 
 
 def _update(ctx: tuple, d: AlarmDecision) -> int:
-    conn, shift_row, start, now_utc = ctx
-    row = _load(conn, d.alarm_id)
+    conn, shift_row, start, now_utc, _rows, _seen = ctx
+    row = _load(ctx, d.alarm_id)
     values: dict[str, Any] = {
         "shift_count": max(1, len(d.shifts)),
         "in_control_streak": len(d.in_control_shifts),
@@ -377,20 +418,21 @@ def _update(ctx: tuple, d: AlarmDecision) -> int:
     if crossing:
         note = d.summary + (" (escalated to alarm: re-opened)" if escalated else "")
         _event(conn, row["id"], UPDATE, now_utc=now_utc, shift_row=shift_row, from_state=state,
+               seen=ctx[5],
                to_state=values.get("state", state), note=note)
     return int(row["id"])
 
 
 def _streak(ctx: tuple, d: AlarmDecision) -> None:
-    conn, _shift_row, _start, now_utc = ctx
-    row = _load(conn, d.alarm_id)
+    conn, _shift_row, _start, now_utc, _rows, _seen = ctx
+    row = _load(ctx, d.alarm_id)
     sql.update_alarm(conn, row["id"], {"in_control_streak": len(d.in_control_shifts),
                                        "details": _details(d, row.get("details"))})
 
 
 def _close(ctx: tuple, d: AlarmDecision) -> bool:
-    conn, shift_row, _start, now_utc = ctx
-    row = _load(conn, d.alarm_id)
+    conn, shift_row, _start, now_utc, _rows, _seen = ctx
+    row = _load(ctx, d.alarm_id)
     if row["state"] not in ACTIVE_STATES:
         sql.update_alarm(conn, row["id"], {"details": _details(d, row.get("details")),
                                            "shift_count": max(1, len(d.shifts))})
@@ -398,7 +440,7 @@ def _close(ctx: tuple, d: AlarmDecision) -> bool:
     sql.update_alarm(conn, row["id"], {
         "state": CLEARED, "updated_utc": now_utc, "in_control_streak": len(d.in_control_shifts),
         "shift_count": max(1, len(d.shifts)), "details": _details(d, row.get("details"))})
-    _event(conn, row["id"], AUTO_CLEAR, now_utc=now_utc, shift_row=shift_row,
+    _event(conn, row["id"], AUTO_CLEAR, now_utc=now_utc, shift_row=shift_row, seen=ctx[5],
            from_state=row["state"], to_state=CLEARED, note=d.note)
     return True
 

@@ -272,12 +272,13 @@ def _evaluation_row(config: Any, shift_row_id: int, status: str, seed: int, star
 
 def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[ev.Finding],
                seed: int, now: dt.datetime, t0: float, extra: Any = None,
-               row_id: int | None = None) -> EvaluationSummary:
+               row_id: int | None = None, fresh: bool = False) -> EvaluationSummary:
     """Decide and write one shift's evaluation inside the caller's write transaction
-    (``row_id``: the shift's row, when the caller has made sure of it)."""
+    (``row_id``: the shift's row, when the caller has made sure of it; ``fresh``: no alarm
+    has a raise or update event of this shift yet)."""
     if row_id is None:
         row_id = ensure_shifts(conn, [shift])[shift.id]
-    active = alarmlog.active_alarms(conn, row_id)
+    active, alarm_rows = alarmlog.active_alarms_with_rows(conn, row_id)
     decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
                             history=_history(conn, config, shift), names=dict(config.categories))
     old = esql.supersede_current(conn, row_id, to_utc_naive(now))
@@ -285,7 +286,8 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
         conn, _evaluation_row(config, row_id, OK, seed, now, t0, None, True))
     esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
     applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
-                                       shift_start_utc=to_utc_naive(shift.start), now=now)
+                                       shift_start_utc=to_utc_naive(shift.start), now=now,
+                                       rows=alarm_rows, fresh=fresh)
     if hasattr(extra, "write"):  # the sequential stage keeps its chart values in this transaction
         extra.write(conn, shift, row_id)
     verdicts = Counter(f.verdict for f in decided.findings)
@@ -459,7 +461,9 @@ class _Run:
                         for (s, seed), t in zip(work, tables, strict=True)]
             def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
                 ids = ensure_shifts(conn, shifts)
-                return ([_write_one(conn, config, s, found, seed, now, t0, extra, ids[s.id])
+                told = alarmlog.shifts_with_events(conn, list(ids.values()))
+                return ([_write_one(conn, config, s, found, seed, now, t0, extra, ids[s.id],
+                                    ids[s.id] not in told)
                          for s, seed, found in computed], _mark_due(conn, to_mark, now))
 
             out, marked = run_write(self.engine, write)

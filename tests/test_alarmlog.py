@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import threading
 
@@ -83,6 +84,33 @@ def test_update_through_the_policy_then_same_shift_again(store):
     assert a.severity == policy.ALARM and a.shift_id == shifts[0].id
     assert count(engine, alarm) == 1
     assert count(engine, alarm_event, alarm_event.c.action == "update") == 1
+
+
+def test_prefetched_rows_and_a_fresh_shift_write_what_the_plain_path_writes(store):
+    """``rows`` (read with the active alarms) and ``fresh`` (no event of the shift yet) only
+    save queries: an update then a second decision on the same alarm in the same apply still
+    give one update event, and the figures of the last decision."""
+    engine, shifts, rows = store
+    (alarm_id,) = apply(engine, shifts, rows, 0, [raise_decision(shifts[0].id)]).opened
+    finding = ev.Finding(kind=ev.KIND_BASELINE, line="L1", verdict=ev.TESTED, reason="r",
+                         pvalue=1e-6, effect_size=0.4, effect_floor=0.1, n=300, effect_name="w",
+                         top_categories=(CategoryShift("FL", "up", 5.0, 60, 30.0, 0.2, 0.1),))
+    s = shifts[1]
+    with write_tx(engine) as conn:
+        assert alarmlog.shifts_with_events(conn, [rows[s.id], rows[shifts[0].id]]) == {
+            rows[shifts[0].id]}
+        active, prefetched = alarmlog.active_alarms_with_rows(conn, rows[s.id])
+        assert set(prefetched) == {alarm_id}
+        (update,) = policy.decide([finding], _thresholds(), shift_id=s.id,
+                                  active=active).decisions
+        again = dataclasses.replace(update, effect_size=0.5)
+        applied = alarmlog.apply_decisions(conn, [update, again], shift_row_id=rows[s.id],
+                                           shift_start_utc=to_utc_naive(s.start), now=NOW,
+                                           rows=prefetched, fresh=True)
+    assert applied.updated == (alarm_id, alarm_id)
+    assert count(engine, alarm_event, alarm_event.c.action == "update") == 1
+    a = alarmlog.get_alarm(engine, alarm_id)
+    assert a.effect_size == 0.5 and a.shift_count == 2 and a.last_shift_id == s.id
 
 
 def _thresholds():

@@ -145,6 +145,16 @@ def has_event(conn: Connection, alarm_id: int, action: str | Sequence[str],
     return row is not None
 
 
+def shifts_with_events(conn: Connection, shift_ids: Sequence[int],
+                       actions: Sequence[str]) -> set[int]:
+    """Which of the shifts have an event of one of ``actions`` (any alarm)."""
+    if not shift_ids:
+        return set()
+    rows = conn.execute(select(alarm_event.c.shift_id).distinct().where(
+        alarm_event.c.shift_id.in_(list(shift_ids)), alarm_event.c.action.in_(list(actions))))
+    return {int(r[0]) for r in rows}
+
+
 def events_of(conn: Connection, alarm_id: int) -> list[dict[str, Any]]:
     """State changes of an alarm, oldest first, with the shift id's date and name."""
     rows = conn.execute(
