@@ -47,6 +47,7 @@ Rules (documented in the README):
 
 from __future__ import annotations
 
+import bisect
 import dataclasses
 import datetime as dt
 import hashlib
@@ -65,6 +66,7 @@ from qcfit import evaluate as ev
 from qcfit.errors import InvalidArgumentError, NotFoundError, QcfitError, StoreError
 from qcfit.model import BaselineRef, CountTable, ShiftInstance
 from qcfit.stats.sequential import (
+    STATE_FORMAT,
     SequentialDesign,
     SequentialLimits,
     SequentialState,
@@ -74,6 +76,9 @@ from qcfit.stats.sequential import (
     init_state,
     make_design,
     signal_reports,
+    stack_designs,
+    stack_limits,
+    stack_states,
     state_from_json,
     state_to_json,
     update,
@@ -349,6 +354,19 @@ def _fresh_reason(plan: LinePlan, prior: PriorCharts | None) -> str | None:
     return None
 
 
+def _fresh_reason_done(plan: LinePlan, done: Any) -> str | None:
+    """:func:`_fresh_reason` for values computed in this run (``done.plan`` made them)."""
+    if done.reset_note is not None:
+        return f"charts reset after {done.shift_id}: {done.reset_note}"
+    if done.plan.signature != plan.signature or set(done.plan.charts) != set(plan.charts):
+        return "baseline version or chart settings changed"
+    return None
+
+
+def _start_of(prior: Any) -> dt.datetime:
+    return prior.start if hasattr(prior, "start") else prior.start_utc
+
+
 def advance(plan: LinePlan, prior: PriorCharts | None, counts: Sequence[int] | np.ndarray,
             lim: LineLimits) -> LineStep:
     """Advance a line's charts by one shift. ``counts`` (K,) over the plant's categories."""
@@ -486,16 +504,126 @@ def fault_finding(line: str, version: int | None, exc: BaseException) -> ev.Find
 
 
 # ---------------------------------------------------------------------------------------
+# one shift of many lines at once
+
+
+@dataclass(slots=True)
+class _Block:
+    """One batched update of the charts of lines that share a design shape (same k, MEWMA
+    lambda, concern names and bank): the stacked values carried on (capped) and the step."""
+
+    plans: tuple[LinePlan, ...]
+    lims: tuple[LineLimits, ...]
+    state: SequentialState
+    step: SequentialStep
+    n: list[int]
+
+
+def _take(obj: Any, i: int) -> Any:
+    """Line ``i`` of a stacked SequentialState or SequentialStep (read-only views)."""
+    return type(obj)(*(getattr(obj, f)[i:i + 1] for f in obj.__slots__))
+
+
+def _shape_key(plan: LinePlan) -> tuple[Any, ...]:
+    d = plan.design
+    return (d.k, d.ewma_lambda, d.bank_w, d.concern_names, d.bank_pairs.tobytes())
+
+
+_META_JSON: dict[tuple[int, int], tuple[LinePlan, LineLimits, str]] = {}
+
+
+def _meta_json(plan: LinePlan, lim: LineLimits) -> str:
+    """JSON text of the MEWMA row's ``design`` entry (as :func:`rows_for` makes it), made once
+    per (plan, limits) object pair."""
+    hit = _META_JSON.get((id(plan), id(lim)))
+    if hit is not None and hit[0] is plan and hit[1] is lim:
+        return hit[2]
+    if len(_META_JSON) > 4096:
+        _META_JSON.clear()
+    meta = {"signature": plan.signature, "codes": list(plan.codes), "charts": list(plan.charts),
+            "calibration": lim.key, "limits_kind": lim.kind, "n_level": lim.n_level,
+            "limits": _limits_json(lim)}
+    text = json.dumps(meta)
+    _META_JSON[(id(plan), id(lim))] = (plan, lim, text)
+    return text
+
+
+def encoded_rows(block: _Block, i: int) -> tuple[dict[str, Any], ...]:
+    """The chart_state rows of line ``i`` of ``block``, equal to :func:`rows_for` of that line
+    except that each ``state`` is its JSON text (the bytes ``json.dumps`` makes of the row's
+    state dict), as :class:`qcfit.store.charts.StateText`."""
+    from qcfit.store.charts import StateText
+
+    plan, lim, st, sp = block.plans[i], block.lims[i], block.state, block.step
+    limits = lim.limits
+    t = int(st.t[i])
+    # one line at a time: the lists made here are freed before the next line's are made
+    mewma = json.dumps({"format": STATE_FORMAT, "t": t, "ewma_z": st.ewma_z[i].tolist(),
+                        "ewma_v": float(st.ewma_v[i]), "ewma_calm": int(st.ewma_calm[i])})
+    mewma = f'{mewma[:-1]}, "design": {_meta_json(plan, lim)}}}'
+    bank = json.dumps({"format": STATE_FORMAT, "t": t, "bank_s": st.bank_s[i].tolist(),
+                       "bank_zero": st.bank_zero[i].tolist(),
+                       "bank_counts": st.bank_counts[i].tolist()})
+    version = plan.baseline_version_id
+    rows = [
+        {"chart": CHART_MEWMA, "state": StateText(mewma), "statistic": _stat(sp.ewma_stat[i]),
+         "threshold": _stat(limits.ewma[0]), "baseline_version_id": version},
+        {"chart": CHART_BANK, "state": StateText(bank), "statistic": _stat(sp.bank_stat[i]),
+         "threshold": _stat(limits.bank[0]), "baseline_version_id": version}]
+    if len(plan.charts) > 2:
+        cs, cz, cc = st.cusum_s[i].tolist(), st.cusum_zero[i].tolist(), \
+            st.cusum_counts[i].tolist()
+        stat = sp.concern_stat[i].tolist()
+        for j, name in enumerate(plan.charts[2:]):
+            text = json.dumps({"format": STATE_FORMAT, "t": t, "cusum_s": cs[j],
+                               "cusum_zero": cz[j], "cusum_counts": cc[j]})
+            rows.append({"chart": name, "state": StateText(text), "statistic": _stat(stat[j]),
+                         "threshold": _stat(limits.concerns[0, j]),
+                         "baseline_version_id": version})
+    return tuple(rows)
+
+
+# ---------------------------------------------------------------------------------------
 # the shell the service hands its engine to
 
 
 @dataclass(slots=True)
 class _Done:
+    """A line's chart values after one shift computed in this run (``block`` row ``row``;
+    ``block`` is dropped once a later shift of the line is stored: the store has them)."""
+
     start: dt.datetime
     shift_id: str
     prior_id: str | None
-    rows: tuple[Mapping[str, Any], ...]
+    prior_start: dt.datetime | None
+    plan: LinePlan
+    block: _Block | None
+    row: int
     reset_note: str | None = None  # an acknowledgement's reset mark already on this shift
+
+    @property
+    def rows(self) -> tuple[Mapping[str, Any], ...]:
+        """The rows as :func:`rows_for` makes them (state dicts)."""
+        if self.block is None:
+            raise StoreError(f"chart values of line {self.plan.line} at {self.shift_id} are "
+                             "no longer kept in memory")
+        b, i = self.block, self.row
+        return rows_for(b.plans[i], _take(b.state, i), _take(b.step, i), b.lims[i])
+
+
+@dataclass(slots=True)
+class _Work:
+    """One line of the shift being computed."""
+
+    line: str
+    index: int  # row in the count table
+    plan: LinePlan
+    prior: Any = None  # _Done, StoredCharts or None
+    lim: LineLimits | None = None
+    started: str | None = None
+    source: tuple[SequentialState, int] | None = None
+    found: ev.Finding | None = None
+    done: _Done | None = None
 
 
 class ChartStage:
@@ -507,6 +635,11 @@ class ChartStage:
     shifts computed before it is written chains correctly. ``write`` checks that the rows the
     computation started from are still the latest in the store (else StoreError: evaluate
     again).
+
+    The lines of a shift are advanced together, one :func:`update` per design shape, and a
+    line's values stay in memory until its next shift is stored. Every line's rows at a
+    shift include a MEWMA row, so the store is probed through the MEWMA rows' keys (index
+    lookups) instead of scanning each line's rows.
     """
 
     def __init__(self, engine: Any, config: Any, *, now: dt.datetime,
@@ -522,6 +655,10 @@ class ChartStage:
         self._keys: dict[tuple[Any, ...], str] = {}  # (plan signature, level) -> cache key
         self._done: dict[str, list[_Done]] = {}  # line -> computed this run, in start order
         self._pending: dict[str, dict[str, _Done]] = {}  # shift id -> line -> rows to write
+        self._stacked: dict[tuple[int, ...], tuple[Any, ...]] = {}  # ids -> (objects, stacked)
+        self._fresh: dict[int, tuple[LinePlan, SequentialState]] = {}  # id(plan) -> init state
+        self._totals: dict[int, dict[str, int]] = {}  # shift row id -> line -> defects
+        self._chains: dict[str, list[tuple[dt.datetime, str]]] = {}  # line -> stored chain
         self.calibration_seconds = 0.0
         self.calibrations = 0
 
@@ -543,39 +680,35 @@ class ChartStage:
         if not lines:
             return []
         start = to_utc_naive(shift.start)
-        with read_tx(self.engine) as conn:
-            # chart values are read only for lines this run has no newer values of
-            newest = sql.latest_starts_before(conn, lines, start)
-            stored = sql.latest_before(conn, [ln for ln in lines if ln in newest
-                                              and not self._newer_here(ln, start, newest[ln])],
-                                       start)
-            totals = sql.line_totals(conn, lines, start, N_WINDOW)
-            marks = sql.marks_at(conn, lines, start)
-        out: list[ev.Finding] = []
-        pending = self._pending.setdefault(shift.id, {})
+        slots: list[ev.Finding | _Work] = []
         for i, line in enumerate(table.lines):
             b = baselines.get(line)
             if b is None:
                 continue
             try:
-                plan = self._plan(line, b)
+                slots.append(_Work(line, i, self._plan(line, b)))
             except InvalidArgumentError as exc:  # e.g. a baseline with one category
-                out.append(ev.Finding(kind=ev.KIND_SEQUENTIAL, line=line, verdict=ev.NOT_TESTED,
-                                      baseline_version_id=b.version_id,
-                                      reason=f"no sequential charts: {exc}"))
-                continue
-            try:
-                found, done = self._line(shift, plan, table.counts[i], stored.get(line),
-                                         totals[line])
-            except QcfitError as exc:
-                log.error("sequential charts of %s at %s: %s", line, shift.id, exc)
-                out.append(fault_finding(line, b.version_id, exc))
-                continue
-            done.reset_note = marks.get(line)
-            pending[line] = done
-            self._remember(line, done)
-            out.append(found)
-        return out
+                slots.append(ev.Finding(kind=ev.KIND_SEQUENTIAL, line=line,
+                                        verdict=ev.NOT_TESTED, baseline_version_id=b.version_id,
+                                        reason=f"no sequential charts: {exc}"))
+        work = [w for w in slots if isinstance(w, _Work)]
+        with read_tx(self.engine) as conn:
+            marks = self._priors(conn, work, start)
+            totals = sql.line_totals(conn, lines, start, N_WINDOW, cache=self._totals)
+        ready = [w for w in work if self._prepare(w, shift, totals[w.line])]
+        groups: dict[tuple[Any, ...], list[_Work]] = {}
+        for w in ready:
+            groups.setdefault(_shape_key(w.plan), []).append(w)
+        for group in groups.values():
+            self._advance(shift, table, group)
+        pending = self._pending.setdefault(shift.id, {})
+        for w in ready:
+            if w.done is not None:
+                w.done.reset_note = marks.get(w.line)
+                pending[w.line] = w.done
+                self._remember(w.line, w.done)
+        return [s if isinstance(s, ev.Finding) else s.found for s in slots
+                if isinstance(s, ev.Finding) or s.found is not None]
 
     def _plan(self, line: str, baseline: BaselineRef) -> LinePlan:
         """:func:`plan_line`, once per line and baseline in a run (the settings are fixed)."""
@@ -587,39 +720,148 @@ class ChartStage:
             found = self._plans[(line, baseline)] = plan_line(line, baseline, self.settings)
         return found
 
-    def _line(self, shift: ShiftInstance, plan: LinePlan, counts: np.ndarray,
-              stored: Any, totals: Sequence[int]) -> tuple[ev.Finding, _Done]:
+    def _fail(self, w: _Work, shift: ShiftInstance, exc: QcfitError) -> None:
+        log.error("sequential charts of %s at %s: %s", w.line, shift.id, exc)
+        w.found, w.done = fault_finding(w.line, w.plan.baseline_version_id, exc), None
+
+    def _prepare(self, w: _Work, shift: ShiftInstance, totals: Sequence[int]) -> bool:
+        """Limits, start reason and starting values of one line (False: it failed)."""
+        try:
+            w.lim = self.limits(w.plan, n_level(totals))
+            w.started, w.source = self._source(w.plan, w.prior)
+        except QcfitError as exc:
+            self._fail(w, shift, exc)
+            return False
+        return True
+
+    def _source(self, plan: LinePlan, prior: Any) -> tuple[str | None, tuple[SequentialState,
+                                                                                int]]:
+        if isinstance(prior, _Done):
+            started = _fresh_reason_done(plan, prior)
+            if started is None and len(set(plan.charts)) == len(plan.charts):
+                return None, (prior.block.state, prior.row)
+            if started is None:  # repeated chart names: exactly as the rows would give it
+                states = {r["chart"]: r["state"] for r in prior.rows}
+                return None, (state_from_rows(plan, states), 0)
+        else:
+            started = _fresh_reason(plan, None if prior is None else PriorCharts(
+                prior.shift_id, prior.states, prior.reset_after))
+            if started is None:
+                return None, (state_from_rows(plan, prior.states), 0)
+        return started, (self._init_state(plan), 0)
+
+    def _init_state(self, plan: LinePlan) -> SequentialState:
+        hit = self._fresh.get(id(plan))
+        if hit is None or hit[0] is not plan:
+            hit = self._fresh[id(plan)] = (plan, init_state(plan.design))
+        return hit[1]
+
+    def _stack(self, objs: Sequence[Any], make: Any) -> Any:
+        """``make(objs)``, made once per tuple of objects (kept with it, so no id is reused)."""
+        key = tuple(id(o) for o in objs)
+        hit = self._stacked.get(key)
+        if hit is None or any(a is not b for a, b in zip(hit[0], objs, strict=True)):
+            if len(self._stacked) > 256:
+                self._stacked.clear()
+            hit = self._stacked[key] = (tuple(objs), make(objs))
+        return hit[1]
+
+    def _advance(self, shift: ShiftInstance, table: CountTable, group: list[_Work]) -> None:
+        """Advance the charts of ``group`` (one design shape) by ``shift``; a line whose
+        values cannot be advanced with the others is tried alone, so a failure stays its own."""
+        try:
+            self._advance_together(shift, table, group)
+        except QcfitError:
+            if len(group) == 1:
+                raise
+            for w in group:
+                try:
+                    self._advance_together(shift, table, [w])
+                except QcfitError as exc:
+                    self._fail(w, shift, exc)
+
+    def _advance_together(self, shift: ShiftInstance, table: CountTable, group: list[_Work]
+                          ) -> None:
         from qcfit.store.engine import to_utc_naive
 
-        line = plan.line
-        prior = self._prior(line, to_utc_naive(shift.start), stored)
-        lim = self.limits(plan, n_level(totals))
-        ls = advance(plan, prior, counts, lim)
-        chain = self._chain(line, shift, int(ls.step.t[0])) if ls.reports else [shift.id]
-        found = line_finding(plan, ls, lim, chain, dict(self.config.categories))
-        return found, _Done(to_utc_naive(shift.start), shift.id,
-                            prior.shift_id if prior else None, ls.rows)
+        plans = [w.plan for w in group]
+        design = self._stack(plans, lambda ps: stack_designs([p.design for p in ps]))
+        limits = self._stack([w.lim for w in group],
+                             lambda ls: stack_limits([lim.limits for lim in ls]))
+        state = stack_states([w.source for w in group])
+        counts = np.asarray(table.counts, dtype=np.int64)
+        cols = {p.columns for p in plans}
+        rows = [w.index for w in group]
+        if len(cols) == 1:
+            x = counts[np.ix_(rows, list(next(iter(cols))))]
+        else:
+            x = np.stack([counts[w.index][list(w.plan.columns)] for w in group])
+        new, step = update(state, x, design, limits)
+        by_line: dict[int, list[SignalReport]] = {}
+        for r in signal_reports(step, new, design, limits):
+            by_line.setdefault(r.line, []).append(dataclasses.replace(r, line=0))
+        block = _Block(tuple(plans), tuple(w.lim for w in group), capped(new, limits), step,
+                       x.sum(axis=1).tolist())
+        start = to_utc_naive(shift.start)
+        names = dict(self.config.categories)
+        for i, w in enumerate(group):
+            try:
+                reports = tuple(by_line.get(i, ()))
+                ls = LineStep((), _take(block.state, i), _take(step, i), reports, w.started,
+                              int(block.n[i]))
+                chain = self._chain(w.line, shift, int(step.t[i])) if reports else [shift.id]
+                w.found = line_finding(w.plan, ls, w.lim, chain, names)
+            except QcfitError as exc:
+                self._fail(w, shift, exc)
+                continue
+            prior = w.prior
+            w.done = _Done(start, shift.id, None if prior is None else prior.shift_id,
+                           None if prior is None else _start_of(prior), w.plan, block, i)
 
-    def _newer_here(self, line: str, start: dt.datetime, stored_start: dt.datetime) -> bool:
-        """True when :meth:`_prior` would take this run's values over the store's."""
-        mine = [d for d in self._done.get(line, []) if d.start < start]
-        return bool(mine) and mine[-1].start >= stored_start
+    # -- where each line starts from ------------------------------------------------------
 
-    def _prior(self, line: str, start: dt.datetime, stored: Any) -> PriorCharts | None:
-        mine = [d for d in self._done.get(line, []) if d.start < start]
-        if mine and (stored is None or mine[-1].start >= stored.start_utc):
-            d = mine[-1]
-            return PriorCharts(d.shift_id, {r["chart"]: r["state"] for r in d.rows},
-                               d.reset_note)
-        if stored is None:
-            return None
-        return PriorCharts(stored.shift_id, stored.states, stored.reset_after)
+    def _mine(self, line: str, start: dt.datetime) -> _Done | None:
+        """The line's latest values computed in this run for a shift before ``start``."""
+        for d in reversed(self._done.get(line, ())):
+            if d.start < start:
+                return d
+        return None
+
+    def _priors(self, conn: Any, work: Sequence[_Work], start: dt.datetime) -> dict[str, str]:
+        """Set each line's prior (this run's values, or the store's latest rows before
+        ``start`` when they are newer); returns the reset marks on the lines' rows at
+        ``start`` (an acknowledgement made after those rows were stored)."""
+        from qcfit.store import charts as sql
+
+        if not work:
+            return {}
+        mine = {w.line: self._mine(w.line, start) for w in work}
+        since = min((d.start for d in mine.values() if d is not None), default=start)
+        seen = sql.starts_between(conn, list(mine), since, start, chart=CHART_MEWMA,
+                                  include_end=True)
+        at_start, need = [], []
+        for line, d in mine.items():
+            got = seen.get(line, [])
+            if got and got[-1][0] == start:
+                at_start.append(line)
+                got = got[:-1]
+            if d is None or d.block is None or (got and got[-1][0] > d.start):
+                need.append(line)
+        stored = sql.latest_before(conn, need, start) if need else {}
+        for w in work:
+            d, s = mine[w.line], stored.get(w.line)
+            w.prior = d if d is not None and d.block is not None and (
+                s is None or d.start >= s.start_utc) else s
+        return sql.marks_at(conn, at_start, start) if at_start else {}
 
     def _remember(self, line: str, done: _Done) -> None:
-        lst = [d for d in self._done.get(line, []) if d.shift_id != done.shift_id]
-        lst.append(done)
-        lst.sort(key=lambda d: d.start)
-        self._done[line] = lst
+        lst = self._done.setdefault(line, [])
+        if lst and lst[-1].start >= done.start:
+            lst[:] = [d for d in lst if d.shift_id != done.shift_id]
+            lst.append(done)
+            lst.sort(key=lambda d: d.start)
+        else:
+            lst.append(done)
 
     def _chain(self, line: str, shift: ShiftInstance, t: int) -> list[str]:
         """Shift ids of the line's chain, newest first, starting with ``shift`` (t entries)."""
@@ -627,9 +869,12 @@ class ChartStage:
         from qcfit.store.engine import read_tx, to_utc_naive
 
         start = to_utc_naive(shift.start)
-        with read_tx(self.engine) as conn:
-            stored = sql.chain_ids(conn, line, start - dt.timedelta(microseconds=1),
-                                   min(t, CHAIN_LOOKBACK))
+        chain = self._chains.get(line)
+        if chain is None:  # the store's chain, read once a run (later rows are this run's)
+            with read_tx(self.engine) as conn:
+                chain = self._chains[line] = sql.chain_ids(conn, line, None, None)[::-1]
+        cut = bisect.bisect_left(chain, start, key=lambda e: e[0])
+        stored = chain[max(0, cut - min(t, CHAIN_LOOKBACK)):cut]
         merged = {sid: st for st, sid in stored}
         merged |= {d.shift_id: d.start for d in self._done.get(line, []) if d.start < start}
         older = sorted(merged, key=lambda s: merged[s], reverse=True)
@@ -679,6 +924,7 @@ class ChartStage:
         self._limits[key] = lim
         return lim
 
+
     # -- write ----------------------------------------------------------------------------
 
     def write(self, conn: Any, shift: ShiftInstance, shift_row_id: int) -> None:
@@ -688,16 +934,44 @@ class ChartStage:
 
         start = to_utc_naive(shift.start)
         pending = self._pending.pop(shift.id, {})
-        stored = sql.latest_ids_before(conn, list(pending), start)
-        for line, done in pending.items():
-            have = stored.get(line)
-            if have != done.prior_id:
-                self._done.pop(line, None)
-                raise StoreError(f"chart state of line {line} changed while shift {shift.id} "
-                                 f"was computed (started from {done.prior_id}, the store has "
-                                 f"{have}); evaluate again")
+        self._check_unchanged(conn, shift, start, pending)
         sql.write_states_many(conn, shift_row_id,
-                              {line: done.rows for line, done in pending.items()})
+                              {line: encoded_rows(d.block, d.row) for line, d in pending.items()},
+                              probe_chart=CHART_MEWMA)
+        for line in pending:  # older values of the line are in the store now
+            for d in reversed(self._done.get(line, ())):
+                if d.start >= start:
+                    continue
+                if d.block is None:
+                    break
+                d.block = None
+
+    def _check_unchanged(self, conn: Any, shift: ShiftInstance, start: dt.datetime,
+                         pending: Mapping[str, _Done]) -> None:
+        """StoreError unless each line's latest rows before ``start`` in the store are still
+        the ones its values were computed from."""
+        from qcfit.store import charts as sql
+
+        after = [ln for ln, d in pending.items() if d.prior_id is not None]
+        bad = set()
+        if after:
+            since = min(pending[ln].prior_start for ln in after)
+            seen = sql.starts_between(conn, after, since, start, chart=CHART_MEWMA,
+                                      include_end=False)
+            bad |= {ln for ln in after
+                    if not seen.get(ln) or seen[ln][-1][1] != pending[ln].prior_id}
+        first = [ln for ln, d in pending.items() if d.prior_id is None]
+        if first:
+            bad |= set(sql.latest_starts_before(conn, first, start))
+        if not bad:
+            return
+        line = next(ln for ln in pending if ln in bad)
+        have = sql.latest_ids_before(conn, [line], start).get(line)
+        self._done.pop(line, None)
+        self._chains.clear()
+        raise StoreError(f"chart state of line {line} changed while shift {shift.id} was "
+                         f"computed (started from {pending[line].prior_id}, the store has "
+                         f"{have}); evaluate again")
 
     # -- order ----------------------------------------------------------------------------
 

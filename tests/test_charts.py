@@ -417,3 +417,62 @@ def test_a_baseline_with_one_category_is_not_charted(tmp_path, plant_config_text
     assert [(f.line, f.verdict) for f in found] == [("L1", "not-tested")]
     assert "needs two categories with a share > 0" in found[0].reason
     engine.dispose()
+
+
+def test_stage_rows_equal_the_one_line_path_byte_for_byte(tmp_path, plant_config_text):
+    """The stage advances lines together and keeps their values in memory between shifts;
+    the rows it stores are the bytes the one-line path (advance from the previous rows,
+    json.dumps of each state) makes, for lines of different category counts."""
+    _, config, engine, cal = make_plant(tmp_path, plant_config_text, FAST)
+    work = shifts(cal, 16)
+    load(engine, work, drift_counts(start=4))
+    tables = service._read_tables(engine, config, work)
+    baselines = {"L1": ref(), "L2": ref(np.array([0.35, 0.25, 0.20, 0.12, 0.08, 0.0])),
+                 "L3": ref(), "L4": ref(np.array([0.2, 0.2, 0.2, 0.2, 0.1, 0.1]))}
+    stage = charts.ChartStage(engine, config, now=after(work))
+    names = dict(config.categories)
+    prior: dict[str, charts.PriorCharts | None] = dict.fromkeys(baselines)
+    signalled = 0
+    for s, table in zip(work, tables, strict=True):
+        found = {f.line: f for f in stage(table, baselines)}
+        with write_tx(engine) as conn:
+            sid = ensure_shifts(conn, [s])[s.id]
+            stage.write(conn, s, sid)
+        with read_tx(engine) as conn:
+            stored = {(r[0], r[1]): r[2:] for r in conn.exec_driver_sql(
+                "SELECT line, chart, state, statistic, threshold FROM chart_state "
+                "WHERE shift_id = ?", (sid,))}
+        for i, ln in enumerate(table.lines):
+            plan = charts.plan_line(ln, baselines[ln], config.sequential)
+            lim = stage.limits(plan, found[ln].details["n_level"])
+            ls = charts.advance(plan, prior[ln], table.counts[i], lim)
+            assert len(ls.rows) == len([k for k in stored if k[0] == ln])
+            for r in ls.rows:
+                assert stored[(ln, r["chart"])] == (json.dumps(r["state"]), r["statistic"],
+                                                    r["threshold"])
+            if not ls.reports:
+                assert found[ln] == charts.line_finding(plan, ls, lim, [s.id], names)
+            signalled += bool(ls.reports)
+            prior[ln] = charts.PriorCharts(s.id, {r["chart"]: r["state"] for r in ls.rows})
+    assert signalled  # the drifting line's signals went through the stage too
+    engine.dispose()
+
+
+def test_rows_written_as_text_keep_a_reset_mark_as_dict_rows_do(tmp_path, plant_config_text):
+    _, config, engine, cal = make_plant(tmp_path, plant_config_text, FAST)
+    work = shifts(cal, 1)
+    state = {"format": 1, "t": 3, "bank_s": [0.5, 0.0], "bank_counts": [[1.0, 2.0, 3.0]]}
+    with write_tx(engine) as conn:
+        sid = ensure_shifts(conn, [work[0]])[work[0].id]
+        rows = [{"chart": "MEWMA", "state": state}, {"chart": "bank", "state": state}]
+        chart_sql.write_states_many(conn, sid, {"L1": rows})
+        assert chart_sql.mark_reset(conn, "L1", "ack 7") == work[0].id
+        text = chart_sql.StateText(json.dumps(state))
+        chart_sql.write_states_many(conn, sid, {"L1": [{"chart": "MEWMA", "state": text},
+                                                       {"chart": "bank", "state": text}],
+                                                "L2": [{"chart": "MEWMA", "state": text}]},
+                                    probe_chart="MEWMA")
+        got = dict(conn.exec_driver_sql("SELECT line || chart, state FROM chart_state").all())
+    marked = json.dumps(state | {chart_sql.RESET_KEY: "ack 7"})
+    assert got == {"L1MEWMA": marked, "L1bank": marked, "L2MEWMA": json.dumps(state)}
+    engine.dispose()

@@ -169,6 +169,36 @@ class SequentialDesign:
         )
 
 
+def stack_designs(designs: Sequence[SequentialDesign]) -> SequentialDesign:
+    """The chart sets of ``designs`` as one chart set over all their lines, in order.
+
+    Every design must have the same ``k``, MEWMA lambda, concern names, bank pairs and
+    bank_w (InvalidArgumentError otherwise); a line's charts in the stacked set are exactly
+    its charts in its own design (``stack_designs(ds).select([i])`` equals ``ds[i]`` for
+    single-line designs).
+    """
+    if not designs:
+        raise InvalidArgumentError("designs", "no chart sets to stack")
+    first = designs[0]
+    for i, d in enumerate(designs[1:], 1):
+        if (d.k != first.k or d.ewma_lambda != first.ewma_lambda or d.bank_w != first.bank_w
+                or d.concern_names != first.concern_names
+                or not np.array_equal(d.bank_pairs, first.bank_pairs)):
+            raise InvalidArgumentError(f"designs[{i}]", "differs from designs[0] in k, lambda, "
+                                       "concerns or bank")
+    if len(designs) == 1:
+        return first
+
+    def cat(name: str) -> np.ndarray:
+        return _ro(np.concatenate([getattr(d, name) for d in designs]))
+
+    return SequentialDesign(
+        p0=cat("p0"), ewma_lambda=first.ewma_lambda, concern_names=first.concern_names,
+        concern_p1=cat("concern_p1"), concern_weights=cat("concern_weights"),
+        bank_w=first.bank_w, bank_pairs=first.bank_pairs, bank_weights=cat("bank_weights"),
+    )
+
+
 def _check_p0(p0: Any) -> np.ndarray:
     p = np.array(p0, dtype=float)
     if p.ndim == 1:
@@ -256,6 +286,19 @@ class SequentialLimits:
         return SequentialLimits(dec(obj["ewma"]), dec(obj["concerns"]), dec(obj["bank"]))
 
 
+def stack_limits(limits: Sequence[SequentialLimits]) -> SequentialLimits:
+    """Limits of several chart sets (same number of concerns) stacked along the line axis."""
+    if not limits:
+        raise InvalidArgumentError("limits", "no limits to stack")
+    if len(limits) == 1:
+        return limits[0]
+    return SequentialLimits(
+        ewma=_ro(np.concatenate([lim.ewma for lim in limits])),
+        concerns=_ro(np.concatenate([lim.concerns for lim in limits])),
+        bank=_ro(np.concatenate([lim.bank for lim in limits])),
+    )
+
+
 def make_limits(design: SequentialDesign, *, ewma: Any = np.inf, concerns: Any = np.inf,
                 bank: Any = np.inf) -> SequentialLimits:
     """Limits broadcast to the design's shapes (scalars or arrays)."""
@@ -328,6 +371,29 @@ def reset_lines(state: SequentialState, design: SequentialDesign,
         a = np.array(getattr(state, f.name))
         a[idx] = getattr(fresh, f.name)[idx]
         out[f.name] = _ro(a)
+    return SequentialState(**out)
+
+
+def stack_states(parts: Sequence[tuple[SequentialState, int]]) -> SequentialState:
+    """One state whose line ``i`` is line ``parts[i][1]`` of state ``parts[i][0]`` (exact
+    copies of the values; runs of consecutive lines of one state are taken as one slice, and
+    a single run covering a whole state returns that state)."""
+    if not parts:
+        raise InvalidArgumentError("parts", "no lines")
+    runs: list[tuple[SequentialState, int, int]] = []
+    for st, i in parts:
+        if runs and runs[-1][0] is st and runs[-1][2] == i:
+            runs[-1] = (st, runs[-1][1], i + 1)
+        else:
+            runs.append((st, i, i + 1))
+    if len(runs) == 1:
+        st, a, b = runs[0]
+        if a == 0 and b == st.t.shape[0]:
+            return st
+    out = {}
+    for f in fields(SequentialState):
+        pieces = [getattr(st, f.name)[a:b] for st, a, b in runs]
+        out[f.name] = _ro(pieces[0].copy() if len(pieces) == 1 else np.concatenate(pieces))
     return SequentialState(**out)
 
 

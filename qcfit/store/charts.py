@@ -14,17 +14,26 @@ Times are naive UTC (see :mod:`qcfit.store.schema`).
 from __future__ import annotations
 
 import datetime as dt
+import json
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import and_, delete, func, insert, select, update
+from sqlalchemy import Text, and_, bindparam, cast, delete, func, insert, select, update
 from sqlalchemy.engine import Connection
 
 from qcfit.model import format_shift_id
 from qcfit.store.schema import chart_calibration, chart_state, defect_count, shift
 
 RESET_KEY = "reset_after"
+IN_CHUNK = 500  # values per IN (...) list
+
+
+class StateText(str):
+    """A chart state already encoded: exactly the text ``json.dumps`` makes of the state dict
+    (written as it is, so it must be a JSON object)."""
+
+    __slots__ = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -118,6 +127,38 @@ def latest_ids_before(conn: Connection, lines: Sequence[str], before_utc: dt.dat
     return out
 
 
+def starts_between(conn: Connection, lines: Sequence[str], since_utc: dt.datetime,
+                   until_utc: dt.datetime, *, chart: str, include_end: bool = False
+                   ) -> dict[str, list[tuple[dt.datetime, str]]]:
+    """Per line, (start, shift id) of the shifts starting from ``since_utc`` to before
+    ``until_utc`` (or at it, with ``include_end``) where the line has a row of ``chart``,
+    oldest first. A chart every line's rows include finds every shift with chart rows; the
+    rows are found by their key (shifts by start, then line, chart and shift), so the cost
+    grows with the window, not with the store."""
+    if not lines:
+        return {}
+    end = shift.c.start_utc <= until_utc if include_end else shift.c.start_utc < until_utc
+    found = conn.execute(
+        select(shift.c.id, shift.c.start_utc, shift.c.shift_date, shift.c.shift_name)
+        .where(shift.c.start_utc >= since_utc, end)).all()
+    if not found:
+        return {}
+    info = {int(r.id): (_naive(r.start_utc), format_shift_id(_date(r.shift_date), r.shift_name))
+            for r in found}
+    ids = list(info)
+    out: dict[str, list[tuple[dt.datetime, str]]] = {}
+    for i in range(0, len(ids), IN_CHUNK):
+        rows = conn.execute(
+            select(chart_state.c.line, chart_state.c.shift_id)
+            .where(chart_state.c.line.in_(list(lines)), chart_state.c.chart == chart,
+                   chart_state.c.shift_id.in_(ids[i:i + IN_CHUNK])))
+        for line, sid in rows:
+            out.setdefault(line, []).append(info[int(sid)])
+    for v in out.values():
+        v.sort()
+    return out
+
+
 def states_at(conn: Connection, shift_row_id: int, lines: Sequence[str] | None = None
               ) -> dict[str, StoredCharts]:
     """Per line, its chart rows at one shift."""
@@ -136,17 +177,19 @@ def marks_at(conn: Connection, lines: Sequence[str], start_utc: dt.datetime) -> 
     return {ln: mark for ln, g in _group(rows).items() if (mark := g.reset_after)}
 
 
-def chain_ids(conn: Connection, line: str, until_utc: dt.datetime, limit: int
+def chain_ids(conn: Connection, line: str, until_utc: dt.datetime | None, limit: int | None
               ) -> list[tuple[dt.datetime, str]]:
-    """(start, shift id) of the line's chain up to and including ``until_utc``, newest first."""
-    rows = conn.execute(
-        select(shift.c.shift_date, shift.c.shift_name, shift.c.start_utc)
-        .where(shift.c.id.in_(select(chart_state.c.shift_id).where(chart_state.c.line == line)),
-               shift.c.start_utc <= until_utc)
-        .order_by(shift.c.start_utc.desc()).limit(limit))
+    """(start, shift id) of the line's chain up to and including ``until_utc`` (None: all),
+    newest first, at most ``limit`` (None: all)."""
+    q = (select(shift.c.shift_date, shift.c.shift_name, shift.c.start_utc)
+         .where(shift.c.id.in_(select(chart_state.c.shift_id).where(chart_state.c.line == line)))
+         .order_by(shift.c.start_utc.desc()))
+    if until_utc is not None:
+        q = q.where(shift.c.start_utc <= until_utc)
+    if limit is not None:
+        q = q.limit(limit)
     return [(_naive(r.start_utc), format_shift_id(_date(r.shift_date), r.shift_name))
-            for r in rows]
-
+            for r in conn.execute(q)]
 
 def shifts_with_state_after(conn: Connection, after_utc: dt.datetime) -> list[tuple[dt.date, str]]:
     """(date, name) of every shift starting after ``after_utc`` that has chart rows."""
@@ -166,31 +209,60 @@ def latest_start(conn: Connection) -> dt.datetime | None:
 
 
 def write_states_many(conn: Connection, shift_row_id: int,
-                      by_line: Mapping[str, Sequence[Mapping[str, Any]]]) -> None:
+                      by_line: Mapping[str, Sequence[Mapping[str, Any]]], *,
+                      probe_chart: str | None = None) -> None:
     """Replace the chart rows of several lines at one shift (each row: chart,
     baseline_version_id, state, statistic, threshold); a reset mark on the rows replaced is
-    kept. One read of the rows replaced, one delete, one executemany insert."""
+    kept. A ``state`` may be a :class:`StateText`. With ``probe_chart`` (a chart every line's
+    rows include), the lines' rows at the shift are looked up by that chart's keys first and
+    only lines that have rows there are read and deleted. One executemany insert."""
     if not by_line:
         return
     lines = list(by_line)
-    old = states_at(conn, shift_row_id, lines)
-    conn.execute(delete(chart_state).where(chart_state.c.line.in_(lines),
-                                           chart_state.c.shift_id == shift_row_id))
+    if probe_chart is not None:
+        lines = [r.line for r in conn.execute(
+            select(chart_state.c.line).where(chart_state.c.line.in_(lines),
+                                             chart_state.c.chart == probe_chart,
+                                             chart_state.c.shift_id == shift_row_id))]
+    old = states_at(conn, shift_row_id, lines) if lines else {}
+    if lines:
+        conn.execute(delete(chart_state).where(chart_state.c.line.in_(lines),
+                                               chart_state.c.shift_id == shift_row_id))
+    as_text = conn.dialect._json_serializer is None  # the JSON type would write json.dumps
     values = []
     for line, rows in by_line.items():
         g = old.get(line)
         mark = g.reset_after if g is not None else None
         for r in rows:
-            state = dict(r["state"])
-            if mark:
-                state[RESET_KEY] = mark
+            state = _state_value(r["state"], mark, as_text)
             values.append({"line": line, "chart": r["chart"], "shift_id": shift_row_id,
                            "baseline_version_id": r.get("baseline_version_id"),
-                           "state": state, "statistic": r.get("statistic"),
-                           "threshold": r.get("threshold")})
-    if values:
+                           "state_text" if as_text else "state": state,
+                           "statistic": r.get("statistic"), "threshold": r.get("threshold")})
+    if not values:
+        return
+    if as_text:
+        text = bindparam("state_text", type_=Text)
+        if conn.dialect.name != "sqlite":
+            text = cast(text, chart_state.c.state.type)
+        conn.execute(insert(chart_state).values(state=text), values)
+    else:
         conn.execute(insert(chart_state), values)
 
+
+def _state_value(state: Any, mark: str | None, as_text: bool) -> Any:
+    """A row's state as JSON text (``as_text``) or as a dict, with the reset mark added."""
+    if isinstance(state, StateText):
+        if not as_text:
+            state = json.loads(state)
+        elif mark:
+            return f"{state[:-1]}, {json.dumps(RESET_KEY)}: {json.dumps(mark)}}}"
+        else:
+            return str(state)
+    state = dict(state)
+    if mark:
+        state[RESET_KEY] = mark
+    return json.dumps(state) if as_text else state
 
 def mark_reset(conn: Connection, line: str, note: str) -> str | None:
     """Mark the line's latest chart rows so that the next shift starts afresh; returns the
@@ -206,24 +278,31 @@ def mark_reset(conn: Connection, line: str, note: str) -> str | None:
     return last.shift_id
 
 
-def line_totals(conn: Connection, lines: Sequence[str], until_utc: dt.datetime, last: int
-                ) -> dict[str, list[int]]:
+def line_totals(conn: Connection, lines: Sequence[str], until_utc: dt.datetime, last: int,
+                cache: dict[int, dict[str, int]] | None = None) -> dict[str, list[int]]:
     """Per line, the defect totals of the ``last`` shifts in the store that start at or before
-    ``until_utc`` (0 for a shift with no count rows for the line), newest first."""
+    ``until_utc`` (0 for a shift with no count rows for the line), newest first.
+
+    ``cache`` (shift row id -> line -> total) keeps the totals read, for the next call: a
+    caller that passes it again must know that those shifts' counts have not changed."""
     ids = [(int(r.id)) for r in conn.execute(
         select(shift.c.id).where(shift.c.start_utc <= until_utc)
         .order_by(shift.c.start_utc.desc()).limit(last))]
-    out = {ln: [0] * len(ids) for ln in lines}
     if not ids or not lines:
-        return out
-    pos = {sid: i for i, sid in enumerate(ids)}
-    q = (select(defect_count.c.shift_id, defect_count.c.line, func.sum(defect_count.c["count"]))
-         .where(defect_count.c.shift_id.in_(ids), defect_count.c.line.in_(list(lines)))
-         .group_by(defect_count.c.shift_id, defect_count.c.line))
-    for sid, ln, total in conn.execute(q):
-        out[ln][pos[int(sid)]] = int(total or 0)
-    return out
-
+        return {ln: [0] * len(ids) for ln in lines}
+    cache = {} if cache is None else cache
+    want = set(lines)
+    need = [sid for sid in ids if sid not in cache or not want <= cache[sid].keys()]
+    if need:
+        got = {sid: dict.fromkeys(lines, 0) for sid in need}
+        q = (select(defect_count.c.shift_id, defect_count.c.line,
+                    func.sum(defect_count.c["count"]))
+             .where(defect_count.c.shift_id.in_(need), defect_count.c.line.in_(list(lines)))
+             .group_by(defect_count.c.shift_id, defect_count.c.line))
+        for sid, ln, total in conn.execute(q):
+            got[int(sid)][ln] = int(total or 0)
+        cache.update(got)
+    return {ln: [cache[sid][ln] for sid in ids] for ln in lines}
 
 def get_calibrations(conn: Connection, keys: Iterable[str]) -> dict[str, dict[str, Any]]:
     """Cached calibration rows by key."""

@@ -22,6 +22,9 @@ from qcfit.stats.sequential import (
     reset_lines,
     run,
     signal_reports,
+    stack_designs,
+    stack_limits,
+    stack_states,
     state_from_json,
     state_to_json,
     update,
@@ -212,6 +215,36 @@ def test_vectorized_over_lines_equals_line_by_line():
             assert np.array_equal(getattr(st_all, name)[i], getattr(st_i, name)[0]), name
         for a, b in zip(steps_all, steps_i, strict=True):
             assert a.ewma_stat[i] == b.ewma_stat[0] and a.bank_top[i] == b.bank_top[0]
+
+
+def test_stacked_one_line_chart_sets_advance_exactly_as_each_alone():
+    """Lines built one by one (each its own p0 and limits) and stacked, from states picked
+    out of other states, give bit for bit each line's own values and statistics."""
+    d = _design(m=4)
+    ones = [d.select([i]) for i in range(d.m)]
+    lims = [make_limits(di, ewma=8.0 + i, concerns=2.0 + i, bank=4.0 + i)
+            for i, di in enumerate(ones)]
+    x = _stream(d, 25, 9)
+    alone = [run(di, li, x[:12, i:i + 1, :])[0] for i, (di, li) in enumerate(zip(ones, lims,
+                                                                                 strict=True))]
+    order = [2, 0, 3, 1]
+    sd = stack_designs([ones[i] for i in order])
+    sl = stack_limits([lims[i] for i in order])
+    st_ = stack_states([(alone[i], 0) for i in order])
+    for t in range(12, 25):
+        st_, step = update(st_, x[t][order], sd, sl)
+        for pos, i in enumerate(order):
+            alone[i], one = update(alone[i], x[t, i:i + 1], ones[i], lims[i])
+            for name in st_.__dataclass_fields__:
+                assert getattr(st_, name)[pos].tobytes() == getattr(alone[i], name)[0].tobytes()
+            for name in step.__dataclass_fields__:
+                assert getattr(step, name)[pos].tobytes() == getattr(one, name)[0].tobytes()
+    assert stack_states([(st_, 0), (st_, 1), (st_, 2), (st_, 3)]) is st_
+    picked = stack_states([(st_, 3), (st_, 1)])
+    assert np.array_equal(picked.bank_s, st_.bank_s[[3, 1]])
+    other = make_design(d.p0[0], ewma_lambda=0.3)
+    with pytest.raises(InvalidArgumentError, match="designs\\[1\\]"):
+        stack_designs([ones[0], other])
 
 
 def test_reset_restarts_only_the_named_lines():
