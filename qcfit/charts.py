@@ -543,25 +543,28 @@ def _meta_json(plan: LinePlan, lim: LineLimits) -> str:
     meta = {"signature": plan.signature, "codes": list(plan.codes), "charts": list(plan.charts),
             "calibration": lim.key, "limits_kind": lim.kind, "n_level": lim.n_level,
             "limits": _limits_json(lim)}
-    text = json.dumps(meta)
+    from qcfit.store import jsontext
+
+    text = jsontext.dumps(meta)
     _META_JSON[(id(plan), id(lim))] = (plan, lim, text)
     return text
 
 
 def encoded_rows(block: _Block, i: int) -> tuple[dict[str, Any], ...]:
     """The chart_state rows of line ``i`` of ``block``, equal to :func:`rows_for` of that line
-    except that each ``state`` is its JSON text (the bytes ``json.dumps`` makes of the row's
-    state dict), as :class:`qcfit.store.charts.StateText`."""
+    except that each ``state`` is its JSON text (the text :mod:`qcfit.store.jsontext` makes of the
+    row's state dict), as :class:`qcfit.store.charts.StateText`."""
+    from qcfit.store import jsontext
     from qcfit.store.charts import StateText
 
     plan, lim, st, sp = block.plans[i], block.lims[i], block.state, block.step
     limits = lim.limits
     t = int(st.t[i])
     # one line at a time: the lists made here are freed before the next line's are made
-    mewma = json.dumps({"format": STATE_FORMAT, "t": t, "ewma_z": st.ewma_z[i].tolist(),
+    mewma = jsontext.dumps({"format": STATE_FORMAT, "t": t, "ewma_z": st.ewma_z[i].tolist(),
                         "ewma_v": float(st.ewma_v[i]), "ewma_calm": int(st.ewma_calm[i])})
-    mewma = f'{mewma[:-1]}, "design": {_meta_json(plan, lim)}}}'
-    bank = json.dumps({"format": STATE_FORMAT, "t": t, "bank_s": st.bank_s[i].tolist(),
+    mewma = f'{mewma[:-1]},"design":{_meta_json(plan, lim)}}}'
+    bank = jsontext.dumps({"format": STATE_FORMAT, "t": t, "bank_s": st.bank_s[i].tolist(),
                        "bank_zero": st.bank_zero[i].tolist(),
                        "bank_counts": st.bank_counts[i].tolist()})
     version = plan.baseline_version_id
@@ -575,7 +578,7 @@ def encoded_rows(block: _Block, i: int) -> tuple[dict[str, Any], ...]:
             st.cusum_counts[i].tolist()
         stat = sp.concern_stat[i].tolist()
         for j, name in enumerate(plan.charts[2:]):
-            text = json.dumps({"format": STATE_FORMAT, "t": t, "cusum_s": cs[j],
+            text = jsontext.dumps({"format": STATE_FORMAT, "t": t, "cusum_s": cs[j],
                                "cusum_zero": cz[j], "cusum_counts": cc[j]})
             rows.append({"chart": name, "state": StateText(text), "statistic": _stat(stat[j]),
                          "threshold": _stat(limits.concerns[0, j]),

@@ -25,6 +25,7 @@ from qcfit.errors import StoreError
 from qcfit.model import BaselineRef
 from qcfit.stats.sequential import init_state, make_design, make_limits, update
 from qcfit.store import charts as chart_sql
+from qcfit.store import jsontext
 from qcfit.store.defects import insert_load, write_counts
 from qcfit.store.engine import make_engine, read_tx, write_tx
 from qcfit.store.migrate import init_store
@@ -422,7 +423,7 @@ def test_a_baseline_with_one_category_is_not_charted(tmp_path, plant_config_text
 def test_stage_rows_equal_the_one_line_path_byte_for_byte(tmp_path, plant_config_text):
     """The stage advances lines together and keeps their values in memory between shifts;
     the rows it stores are the bytes the one-line path (advance from the previous rows,
-    json.dumps of each state) makes, for lines of different category counts."""
+    the store's JSON text of each state) makes, for lines of different category counts."""
     _, config, engine, cal = make_plant(tmp_path, plant_config_text, FAST)
     work = shifts(cal, 16)
     load(engine, work, drift_counts(start=4))
@@ -448,7 +449,7 @@ def test_stage_rows_equal_the_one_line_path_byte_for_byte(tmp_path, plant_config
             ls = charts.advance(plan, prior[ln], table.counts[i], lim)
             assert len(ls.rows) == len([k for k in stored if k[0] == ln])
             for r in ls.rows:
-                assert stored[(ln, r["chart"])] == (json.dumps(r["state"]), r["statistic"],
+                assert stored[(ln, r["chart"])] == (jsontext.dumps(r["state"]), r["statistic"],
                                                     r["threshold"])
             if not ls.reports:
                 assert found[ln] == charts.line_finding(plan, ls, lim, [s.id], names)
@@ -467,12 +468,12 @@ def test_rows_written_as_text_keep_a_reset_mark_as_dict_rows_do(tmp_path, plant_
         rows = [{"chart": "MEWMA", "state": state}, {"chart": "bank", "state": state}]
         chart_sql.write_states_many(conn, sid, {"L1": rows})
         assert chart_sql.mark_reset(conn, "L1", "ack 7") == work[0].id
-        text = chart_sql.StateText(json.dumps(state))
+        text = chart_sql.StateText(jsontext.dumps(state))
         chart_sql.write_states_many(conn, sid, {"L1": [{"chart": "MEWMA", "state": text},
                                                        {"chart": "bank", "state": text}],
                                                 "L2": [{"chart": "MEWMA", "state": text}]},
                                     probe_chart="MEWMA")
         got = dict(conn.exec_driver_sql("SELECT line || chart, state FROM chart_state").all())
-    marked = json.dumps(state | {chart_sql.RESET_KEY: "ack 7"})
-    assert got == {"L1MEWMA": marked, "L1bank": marked, "L2MEWMA": json.dumps(state)}
+    marked = jsontext.dumps(state | {chart_sql.RESET_KEY: "ack 7"})
+    assert got == {"L1MEWMA": marked, "L1bank": marked, "L2MEWMA": jsontext.dumps(state)}
     engine.dispose()

@@ -14,7 +14,6 @@ Times are naive UTC (see :mod:`qcfit.store.schema`).
 from __future__ import annotations
 
 import datetime as dt
-import json
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -23,6 +22,7 @@ from sqlalchemy import Text, and_, bindparam, cast, delete, func, insert, select
 from sqlalchemy.engine import Connection
 
 from qcfit.model import format_shift_id
+from qcfit.store import jsontext
 from qcfit.store.schema import chart_calibration, chart_state, defect_count, shift
 
 RESET_KEY = "reset_after"
@@ -30,8 +30,8 @@ IN_CHUNK = 500  # values per IN (...) list
 
 
 class StateText(str):
-    """A chart state already encoded: exactly the text ``json.dumps`` makes of the state dict
-    (written as it is, so it must be a JSON object)."""
+    """A chart state already encoded: the text :func:`qcfit.store.jsontext.dumps` makes of the
+    state dict (written as it is, so it must be a JSON object)."""
 
     __slots__ = ()
 
@@ -228,41 +228,35 @@ def write_states_many(conn: Connection, shift_row_id: int,
     if lines:
         conn.execute(delete(chart_state).where(chart_state.c.line.in_(lines),
                                                chart_state.c.shift_id == shift_row_id))
-    as_text = conn.dialect._json_serializer is None  # the JSON type would write json.dumps
     values = []
     for line, rows in by_line.items():
         g = old.get(line)
         mark = g.reset_after if g is not None else None
         for r in rows:
-            state = _state_value(r["state"], mark, as_text)
             values.append({"line": line, "chart": r["chart"], "shift_id": shift_row_id,
                            "baseline_version_id": r.get("baseline_version_id"),
-                           "state_text" if as_text else "state": state,
+                           "state_text": _state_text(r["state"], mark),
                            "statistic": r.get("statistic"), "threshold": r.get("threshold")})
     if not values:
         return
-    if as_text:
-        text = bindparam("state_text", type_=Text)
-        if conn.dialect.name != "sqlite":
-            text = cast(text, chart_state.c.state.type)
-        conn.execute(insert(chart_state).values(state=text), values)
-    else:
-        conn.execute(insert(chart_state), values)
+    # the state goes in as ready JSON text (cast on PostgreSQL, whose json takes no text)
+    text = bindparam("state_text", type_=Text)
+    if conn.dialect.name != "sqlite":
+        text = cast(text, chart_state.c.state.type)
+    conn.execute(insert(chart_state).values(state=text), values)
 
 
-def _state_value(state: Any, mark: str | None, as_text: bool) -> Any:
-    """A row's state as JSON text (``as_text``) or as a dict, with the reset mark added."""
+def _state_text(state: Any, mark: str | None) -> str:
+    """A row's state as JSON text, with the reset mark added."""
     if isinstance(state, StateText):
-        if not as_text:
-            state = json.loads(state)
-        elif mark:
-            return f"{state[:-1]}, {json.dumps(RESET_KEY)}: {json.dumps(mark)}}}"
-        else:
-            return str(state)
+        if mark:
+            return f"{state[:-1]},{jsontext.dumps(RESET_KEY)}:{jsontext.dumps(mark)}}}"
+        return str(state)
     state = dict(state)
     if mark:
         state[RESET_KEY] = mark
-    return json.dumps(state) if as_text else state
+    return jsontext.dumps(state)
+
 
 def mark_reset(conn: Connection, line: str, note: str) -> str | None:
     """Mark the line's latest chart rows so that the next shift starts afresh; returns the
