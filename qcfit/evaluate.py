@@ -47,6 +47,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy import special
 from scipy import stats as sps
 
 from qcfit import stats as qstats
@@ -207,7 +208,10 @@ def chisq_powers(w: Any, dof: Any, n: Any, alpha: Any) -> np.ndarray:
     w, dof, n, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (w, dof, n, alpha)))
     ok = (dof >= 1) & (n >= 1)
     d = np.where(ok, dof, 1.0)
-    crit = sps.chi2.isf(alpha, d)
+    if ((alpha > 0) & (alpha < 1)).all() and np.isfinite(d).all():
+        crit = special.chdtri(d, alpha)  # = scipy.stats.chi2.isf(alpha, d), minus its overhead
+    else:
+        crit = sps.chi2.isf(alpha, d)
     return np.where(ok, sps.ncx2.sf(crit, d, np.where(ok, n, 1.0) * w * w), 0.0)
 
 
@@ -216,7 +220,7 @@ def poisson_powers(mu0: Any, ratio: Any, alpha: Any) -> np.ndarray:
     mu0, ratio, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (mu0, ratio, alpha)))
     ok = mu0 > 0
     mu = np.where(ok, mu0, 1.0)
-    c = sps.poisson.isf(alpha, mu) + 1
+    c = qstats.poisson_isf(alpha, mu) + 1
     for _ in range(3):  # settle c onto the smallest count whose upper tail is <= alpha
         c = np.where((c > 0) & (qstats.poisson_sf(c - 2, mu) <= alpha), c - 1, c)
         c = np.where(qstats.poisson_sf(c - 1, mu) > alpha, c + 1, c)
@@ -586,13 +590,15 @@ def _gof_two_pass(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: 
     adj = np.full(len(jobs), np.nan)
     if mine.size:
         adj[mine] = _adjusted(np.concatenate([own[mine], others]), method)[: mine.size]
+    sparse_rows = ~cochran_rows(np.array([f.expected for f in first], dtype=float),
+                                np.stack([j.proportions for j in jobs]) > 0)
     refine, levels = [], set()
-    for i, (job, f) in enumerate(zip(jobs, first, strict=True)):
+    for i, (job, f, adj_i, sparse) in enumerate(zip(jobs, first, adj.tolist(),
+                                                     sparse_rows.tolist(), strict=True)):
         if not f.testable:
             continue
         lv = (float(job.limits.alarm_level), float(job.limits.watch_level))
-        near = [a for a in lv if a / NEAR_FACTOR <= adj[i] <= a * NEAR_FACTOR]
-        sparse = not cochran_ok(np.asarray(f.expected)[job.proportions > 0])
+        near = [a for a in lv if a / NEAR_FACTOR <= adj_i <= a * NEAR_FACTOR]
         if near or sparse:
             scale = own[i] / adj[i] if adj[i] > 0 else 1.0
             raw = [a * scale for a in lv]
@@ -674,6 +680,16 @@ def cochran_ok(expected: np.ndarray) -> bool:
     """Cochran's rule on an array of expected counts."""
     e = np.asarray(expected, dtype=float).ravel()
     return bool(e.size and e.min() >= 1.0 and (e < 5.0).mean() <= 0.2)
+
+
+def cochran_rows(expected: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """:func:`cochran_ok` of each row's expected counts where ``mask`` is True (lines x
+    categories in, bool per line out)."""
+    e = np.asarray(expected, dtype=float)
+    cells = mask.sum(axis=1)
+    smallest = np.where(mask, e, np.inf).min(axis=1)
+    below_5 = ((e < 5.0) & mask).sum(axis=1)
+    return (cells > 0) & (smallest >= 1.0) & (below_5 / np.maximum(cells, 1) <= 0.2)
 
 
 def _mode_for(expected: np.ndarray) -> str:

@@ -46,6 +46,22 @@ def poisson_sf(k: object, mu: object) -> np.ndarray:
     return np.where(k < 0, 1.0, tail)
 
 
+def poisson_isf(q: object, mu: object) -> np.ndarray:
+    """The smallest k with P(X > k) <= q for X ~ Poisson(mu), arrays broadcast (float64 out).
+
+    ``scipy.stats.poisson.isf`` for 0 < q < 1 and finite mu >= 0, computed as scipy does
+    (its ppf at 1 - q from ``scipy.special.pdtrik``, stepped down one where ``pdtr`` allows)
+    without the per-call argument handling; other input goes to scipy.stats.
+    """
+    q, mu = np.broadcast_arrays(np.asarray(q, dtype=float), np.asarray(mu, dtype=float))
+    if not (((q > 0) & (q < 1)).all() and np.isfinite(mu).all() and (mu >= 0).all()):
+        return np.asarray(stats.poisson.isf(q, mu), dtype=float)
+    p = 1.0 - q
+    vals = np.ceil(special.pdtrik(p, mu))
+    vals1 = np.maximum(vals - 1, 0)
+    return np.where(special.pdtr(vals1, mu) >= p, vals1, vals)
+
+
 def poisson_rate_interval(defects: object, units: object, confidence: float = 0.95
                           ) -> tuple[object, object]:
     """Exact (Garwood) interval (low, high) for a rate, per unit; floats or arrays."""
