@@ -222,8 +222,11 @@ def poisson_powers(mu0: Any, ratio: Any, alpha: Any) -> np.ndarray:
     mu = np.where(ok, mu0, 1.0)
     c = qstats.poisson_isf(alpha, mu) + 1
     for _ in range(3):  # settle c onto the smallest count whose upper tail is <= alpha
-        c = np.where((c > 0) & (qstats.poisson_sf(c - 2, mu) <= alpha), c - 1, c)
-        c = np.where(qstats.poisson_sf(c - 1, mu) > alpha, c + 1, c)
+        step = np.where((c > 0) & (qstats.poisson_sf(c - 2, mu) <= alpha), c - 1, c)
+        step = np.where(qstats.poisson_sf(step - 1, mu) > alpha, step + 1, step)
+        if np.array_equal(step, c):
+            break  # settled: another round would change nothing
+        c = step
     return np.where(ok, qstats.poisson_sf(c - 1, mu * ratio), 0.0)
 
 
