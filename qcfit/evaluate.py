@@ -41,11 +41,13 @@ import functools
 import hashlib
 import logging
 import math
+import operator
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy import special
 from scipy import stats as sps
 
 from qcfit import stats as qstats
@@ -153,6 +155,20 @@ class Finding:
         return self.verdict in TESTABLE and self.pvalue is not None
 
 
+_FINDING_FIELDS = tuple(f.name for f in dataclasses.fields(Finding))
+_FINDING_AT = {name: i for i, name in enumerate(_FINDING_FIELDS)}
+_finding_values = operator.attrgetter(*_FINDING_FIELDS)
+
+
+def with_values(f: Finding, **changes: Any) -> Finding:
+    """``dataclasses.replace(f, **changes)`` for a :class:`Finding`, without its per-call field
+    inspection (the policy copies every finding of a shift)."""
+    values = list(_finding_values(f))
+    for name, value in changes.items():
+        values[_FINDING_AT[name]] = value
+    return Finding(*values)
+
+
 # ---------------------------------------------------------------------------------------
 # seeds and thresholds
 
@@ -192,7 +208,10 @@ def chisq_powers(w: Any, dof: Any, n: Any, alpha: Any) -> np.ndarray:
     w, dof, n, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (w, dof, n, alpha)))
     ok = (dof >= 1) & (n >= 1)
     d = np.where(ok, dof, 1.0)
-    crit = sps.chi2.isf(alpha, d)
+    if ((alpha > 0) & (alpha < 1)).all() and np.isfinite(d).all():
+        crit = special.chdtri(d, alpha)  # = scipy.stats.chi2.isf(alpha, d), minus its overhead
+    else:
+        crit = sps.chi2.isf(alpha, d)
     return np.where(ok, sps.ncx2.sf(crit, d, np.where(ok, n, 1.0) * w * w), 0.0)
 
 
@@ -201,11 +220,14 @@ def poisson_powers(mu0: Any, ratio: Any, alpha: Any) -> np.ndarray:
     mu0, ratio, alpha = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (mu0, ratio, alpha)))
     ok = mu0 > 0
     mu = np.where(ok, mu0, 1.0)
-    c = sps.poisson.isf(alpha, mu) + 1
+    c = qstats.poisson_isf(alpha, mu) + 1
     for _ in range(3):  # settle c onto the smallest count whose upper tail is <= alpha
-        c = np.where((c > 0) & (sps.poisson.sf(c - 2, mu) <= alpha), c - 1, c)
-        c = np.where(sps.poisson.sf(c - 1, mu) > alpha, c + 1, c)
-    return np.where(ok, sps.poisson.sf(c - 1, mu * ratio), 0.0)
+        step = np.where((c > 0) & (qstats.poisson_sf(c - 2, mu) <= alpha), c - 1, c)
+        step = np.where(qstats.poisson_sf(step - 1, mu) > alpha, step + 1, step)
+        if np.array_equal(step, c):
+            break  # settled: another round would change nothing
+        c = step
+    return np.where(ok, qstats.poisson_sf(c - 1, mu * ratio), 0.0)
 
 
 def poisson_power(mu0: float, ratio: float, alpha: float) -> float:
@@ -275,6 +297,43 @@ def top_shifts(
                                  adjusted_residual=r, observed=o, expected=float(exp[j]),
                                  share=o / n if n > 0 else 0.0, reference_share=float(ref[j])))
     return tuple(out)
+
+
+def top_shifts_rows(
+    codes: Sequence[str],
+    observed: np.ndarray,
+    expected: np.ndarray,
+    residuals: np.ndarray,
+    reference: np.ndarray,
+    *,
+    limit: int = TOP_CATEGORIES,
+) -> list[tuple[CategoryShift, ...]]:
+    """:func:`top_shifts` of each row of (lines x categories) arrays, with one sort for all rows
+    and plain Python numbers after that (same categories, same numbers as row by row)."""
+    res = np.asarray(residuals, dtype=float)
+    size = np.abs(res)
+    orders = np.argsort(-size, axis=1, kind="stable").tolist()
+    obs = np.asarray(observed, dtype=np.int64)
+    totals = obs.sum(axis=1).tolist()
+    out = []
+    for order, sz, r, o, e, ref, total in zip(
+            orders, size.tolist(), res.tolist(), obs.tolist(),
+            np.asarray(expected, dtype=float).tolist(),
+            np.asarray(reference, dtype=float).tolist(), totals, strict=True):
+        chosen = []
+        for j in order:  # by |residual|, largest first (NaN last)
+            if not sz[j] >= RESIDUAL_WORTH_NAMING or len(chosen) == limit:
+                break
+            chosen.append(j)
+        if not chosen and order and math.isfinite(r[order[0]]):
+            chosen = [order[0]]
+        n = float(total)
+        out.append(tuple(
+            CategoryShift(code=codes[j], direction="up" if r[j] > 0 else "down",
+                          adjusted_residual=r[j], observed=o[j], expected=e[j],
+                          share=o[j] / n if n > 0 else 0.0, reference_share=ref[j])
+            for j in chosen))
+    return out
 
 
 def _contained(kind: str, line: str | None, version: int | None, fn: Callable[[], Finding]) -> Finding:
@@ -372,31 +431,38 @@ def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int
         observed, props, statistic="pearson", pvalue=mode, seed=seed, draws=draws,
         levels=levels or decision_levels(j.limits for j in jobs))
     codes = tuple(table.categories)
+    totals = observed.sum(axis=1)
     powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
-                          observed.sum(axis=1), [j.limits.alarm_level for j in jobs])
+                          totals, [j.limits.alarm_level for j in jobs])
     cols = {name: np.asarray(getattr(result, name)).tolist() for name in _GOF_FIELDS}
-    cols["expected"] = np.atleast_2d(np.asarray(result.expected, dtype=float))
-    cols["adjusted_residuals"] = np.atleast_2d(np.asarray(result.adjusted_residuals, dtype=float))
-    return [_gof_finding(jobs[i], cols, i, observed[i], props[i], codes, float(powers[i]),
-                         reason) for i in range(len(jobs))]
+    expected = np.atleast_2d(np.asarray(result.expected, dtype=float))
+    residuals = np.atleast_2d(np.asarray(result.adjusted_residuals, dtype=float))
+    # per-line values as plain Python numbers, one conversion per array
+    rows = {"n": totals.tolist(), "power": powers.tolist(),
+            "observed": observed.astype(float).tolist(), "expected": expected.tolist(),
+            "residuals": residuals.tolist(),
+            "top": top_shifts_rows(codes, observed, expected, residuals, props)}
+    return [_gof_finding(jobs[i], cols, rows, i, observed[i], props[i], codes, reason)
+            for i in range(len(jobs))]
 
 
 _GOF_FIELDS = ("impossible", "tested", "method_reason", "dof", "statistic", "pvalue",
                "effect_size", "method", "pvalue_se", "min_expected")
 
 
-def _gof_finding(job: _GofJob, cols: Mapping[str, Any], i: int, observed: np.ndarray,
-                 props: np.ndarray,
-                 codes: tuple[str, ...], power: float, reason: str | None = None) -> Finding:
+def _gof_finding(job: _GofJob, cols: Mapping[str, Any], rows: Mapping[str, Any], i: int,
+                 observed: np.ndarray, props: np.ndarray, codes: tuple[str, ...],
+                 reason: str | None = None) -> Finding:
+    """Line ``i`` of a batch: ``cols`` holds the stats result's per-line fields and ``rows``
+    the per-line figures of :func:`_gof_batch`, both as Python lists."""
     limits = job.limits
-    n = int(observed.sum())
-    expected = cols["expected"][i]
-    residuals = cols["adjusted_residuals"][i]
+    n = rows["n"][i]
+    power = rows["power"][i]
     common = {"kind": KIND_BASELINE, "line": job.line, "n": n,
               "baseline_version_id": job.baseline.version_id,
               "alarm_level": float(limits.alarm_level), "watch_level": float(limits.watch_level),
-              "categories": codes, "observed": tuple(observed.astype(float).tolist()),
-              "expected": tuple(expected.tolist()),
+              "categories": codes, "observed": tuple(rows["observed"][i]),
+              "expected": tuple(rows["expected"][i]),
               "details": {"baseline": job.baseline.name,
                           "effective": job.baseline.effective.isoformat()}}
     if bool(cols["impossible"][i]):
@@ -430,8 +496,8 @@ def _gof_finding(job: _GofJob, cols: Mapping[str, Any], i: int, observed: np.nda
         method_reason=reason or _str_or_none(cols["method_reason"][i]),
         mc_se=_opt_float(cols["pvalue_se"][i]),
         min_expected=_opt_float(cols["min_expected"][i]),
-        top_categories=top_shifts(codes, observed, expected, residuals, props),
-        adjusted_residuals=tuple(residuals.tolist()),
+        top_categories=rows["top"][i],
+        adjusted_residuals=tuple(rows["residuals"][i]),
         **common,
     )
 
@@ -527,13 +593,15 @@ def _gof_two_pass(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: 
     adj = np.full(len(jobs), np.nan)
     if mine.size:
         adj[mine] = _adjusted(np.concatenate([own[mine], others]), method)[: mine.size]
+    sparse_rows = ~cochran_rows(np.array([f.expected for f in first], dtype=float),
+                                np.stack([j.proportions for j in jobs]) > 0)
     refine, levels = [], set()
-    for i, (job, f) in enumerate(zip(jobs, first, strict=True)):
+    for i, (job, f, adj_i, sparse) in enumerate(zip(jobs, first, adj.tolist(),
+                                                     sparse_rows.tolist(), strict=True)):
         if not f.testable:
             continue
         lv = (float(job.limits.alarm_level), float(job.limits.watch_level))
-        near = [a for a in lv if a / NEAR_FACTOR <= adj[i] <= a * NEAR_FACTOR]
-        sparse = not cochran_ok(np.asarray(f.expected)[job.proportions > 0])
+        near = [a for a in lv if a / NEAR_FACTOR <= adj_i <= a * NEAR_FACTOR]
         if near or sparse:
             scale = own[i] / adj[i] if adj[i] > 0 else 1.0
             raw = [a * scale for a in lv]
@@ -617,6 +685,16 @@ def cochran_ok(expected: np.ndarray) -> bool:
     return bool(e.size and e.min() >= 1.0 and (e < 5.0).mean() <= 0.2)
 
 
+def cochran_rows(expected: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """:func:`cochran_ok` of each row's expected counts where ``mask`` is True (lines x
+    categories in, bool per line out)."""
+    e = np.asarray(expected, dtype=float)
+    cells = mask.sum(axis=1)
+    smallest = np.where(mask, e, np.inf).min(axis=1)
+    below_5 = ((e < 5.0) & mask).sum(axis=1)
+    return (cells > 0) & (smallest >= 1.0) & (below_5 / np.maximum(cells, 1) <= 0.2)
+
+
 def _mode_for(expected: np.ndarray) -> str:
     return "asymptotic" if cochran_ok(expected) else "auto"
 
@@ -653,17 +731,74 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
         log.warning("line-vs-rest tests failed together; retrying line by line")
     powers = chisq_powers(limits.min_effect_v, max(int((col > 0).sum()) - 1, 0), total,
                           limits.alarm_level)
-    out = []
-    for i, line in enumerate(table.lines):
-        def one(i: int = i) -> Finding:
-            if big is not None and rows_n[i] > 0 and pair_ok[i]:
-                return _vs_rest_finding(table, counts, i, big, i, limits, float(powers),
-                                        method_reason=_large_text(low[i], small[i]), col=col)
-            pair = np.stack([counts[i], col - counts[i]])
-            res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
-                                              seed=seed, **_mc_options(limits))
-            return _vs_rest_finding(table, counts, i, res, 0, limits, float(powers), col=col)
-        out.append(_contained(KIND_VS_REST, line, None, one))
+    power = float(powers)
+    fast = (rows_n > 0) & pair_ok if big is not None else np.zeros(len(table.lines), dtype=bool)
+    out: dict[int, Finding] = {}
+    if fast.any():
+        try:
+            out = _vs_rest_batch(table, counts, np.flatnonzero(fast), big, limits, power,
+                                 low, small)
+        except Exception:
+            log.warning("line-vs-rest findings failed together; retrying line by line")
+            out = {}
+
+    def one(i: int) -> Finding:
+        if fast[i]:
+            return _vs_rest_finding(table, counts, i, big, i, limits, power,
+                                    method_reason=_large_text(low[i], small[i]), col=col)
+        pair = np.stack([counts[i], col - counts[i]])
+        res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
+                                          seed=seed, **_mc_options(limits))
+        return _vs_rest_finding(table, counts, i, res, 0, limits, power, col=col)
+
+    return [out[i] if i in out else _contained(KIND_VS_REST, line, None, lambda i=i: one(i))
+            for i, line in enumerate(table.lines)]
+
+
+def _vs_rest_batch(table: CountTable, counts: np.ndarray, rows: np.ndarray, res: Any,
+                   limits: Any, power: float, low: np.ndarray, small: np.ndarray
+                   ) -> dict[int, Finding]:
+    """:func:`_vs_rest_finding` for the ``rows`` of the batch result ``res`` whose asymptotic
+    p-value stands (Cochran's rule holds for their 2 x c' table), from whole-array conversions."""
+    col = counts.sum(axis=0)
+    cols = np.flatnonzero(col > 0)
+    codes = tuple(table.categories[j] for j in cols.tolist())
+    total = int(col.sum())
+    mine = counts[np.ix_(rows, cols)]
+    rest = col[cols] - mine
+    rest_sum = rest.sum(axis=1)
+    rest_share = rest / np.maximum(rest_sum, 1)[:, None]  # rows without a rest: all 0
+    expected = np.asarray(res.expected, dtype=float)[np.ix_(rows, cols)]
+    residuals = np.asarray(res.adjusted_residuals, dtype=float)[np.ix_(rows, cols)]
+    tops = top_shifts_rows(codes, mine, expected, residuals, rest_share)
+    enough = power >= limits.power
+    same = {"kind": KIND_VS_REST, "verdict": TESTED if enough else TOO_LITTLE_DATA,
+            "reason": _power_reason(enough, power, limits.power, "V", limits.min_effect_v, total),
+            "effect_name": "V", "effect_floor": float(limits.min_effect_v),
+            "alarm_level": float(limits.alarm_level), "watch_level": float(limits.watch_level),
+            "power": power, "power_needed": float(limits.power), "categories": codes}
+    field = {name: np.asarray(getattr(res, name))[rows].tolist()
+             for name in ("tested", "method_reason", "statistic", "dof", "pvalue",
+                          "effect_size", "method", "pvalue_se")}
+    lines = [table.lines[i] for i in rows.tolist()]
+    n_mine = mine.sum(axis=1).tolist()
+    reasons = [_large_text(a, b) for a, b in zip(low[rows], small[rows], strict=True)]
+    per_row = zip(rows.tolist(), mine.astype(float).tolist(), expected.tolist(),
+                  residuals.tolist(), expected.min(axis=1).tolist(), rest.astype(int).tolist(),
+                  strict=True)
+    out = {}
+    for k, (i, observed, exp, resid, smallest, rest_row) in enumerate(per_row):
+        if not field["tested"][k]:
+            out[i] = Finding(kind=KIND_VS_REST, line=lines[k], verdict=NOT_TESTED, n=n_mine[k],
+                             reason=str(field["method_reason"][k]))
+            continue
+        out[i] = Finding(
+            line=lines[k], statistic=float(field["statistic"][k]), dof=int(field["dof"][k]),
+            pvalue=float(field["pvalue"][k]), effect_size=float(field["effect_size"][k]),
+            method=str(field["method"][k]), method_reason=reasons[k],
+            mc_se=_opt_float(field["pvalue_se"][k]), n=n_mine[k], min_expected=smallest,
+            top_categories=tops[k], observed=tuple(observed), expected=tuple(exp),
+            adjusted_residuals=tuple(resid), details={"rest_observed": rest_row}, **same)
     return out
 
 
@@ -775,14 +910,22 @@ def rate_lines(table: CountTable, baselines: Mapping[str, BaselineRef | None],
     if live.any():
         idx = np.flatnonzero(live)
         test = qstats.rate_test(totals[[jobs[k][0] for k in idx]], units[[jobs[k][0] for k in idx]],
-                                np.array([jobs[k][2].rate for k in idx], dtype=float))
+                                np.array([jobs[k][2].rate for k in idx], dtype=float),
+                                interval=False)
         pvalues[idx] = np.asarray(test.pvalue, dtype=float)
-    out = []
-    for k, (i, line, b, limits) in enumerate(jobs):
-        extra = {"power": float(powers[k]), "pvalue": float(pvalues[k])} if live[k] else {}
-        out.append(_contained(KIND_RATE, line, b.version_id, lambda i=i, line=line, b=b,
-                              limits=limits, extra=extra: rate_finding(
-                                  line, int(totals[i]), float(units[i]), b, limits, **extra)))
+    defects = totals.astype(np.int64).tolist()
+    inspected = units.tolist()
+    figures = [{"power": p, "pvalue": q} if ok else {}
+               for p, q, ok in zip(powers.tolist(), pvalues.tolist(), live.tolist(), strict=True)]
+    try:
+        out = [rate_finding(line, defects[i], inspected[i], b, limits, **figures[k])
+               for k, (i, line, b, limits) in enumerate(jobs)]
+    except Exception:
+        log.warning("rate findings failed together; retrying line by line")
+        out = [_contained(KIND_RATE, line, b.version_id,
+                          lambda i=i, line=line, b=b, limits=limits, extra=figures[k]: rate_finding(
+                              line, defects[i], inspected[i], b, limits, **extra))
+               for k, (i, line, b, limits) in enumerate(jobs)]
     return [f for f in out if f is not None]
 
 

@@ -32,7 +32,6 @@ Shift lists (not counters) drive the counts, so applying the same shift twice ch
 
 from __future__ import annotations
 
-import dataclasses
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -165,17 +164,21 @@ def severity_of(f: Finding, adjusted_p: float | None = None) -> str | None:
 def judge(findings: Sequence[Finding], method: str) -> tuple[Finding, ...]:
     """Adjust p-values per family, then set each testable finding's severity and verdict."""
     out = list(findings)
-    families = (
-        [i for i, f in enumerate(out) if f.testable and f.kind in FAMILY_KINDS],
-        [i for i, f in enumerate(out) if f.testable and f.kind == ev.KIND_VS_REST],
-    )
+    family: list[int] = []
+    vs_rest: list[int] = []
+    for i, f in enumerate(out):
+        if f.verdict in ev.TESTABLE and f.pvalue is not None:  # f.testable
+            if f.kind in FAMILY_KINDS:
+                family.append(i)
+            elif f.kind == ev.KIND_VS_REST:
+                vs_rest.append(i)
     adjusted: dict[int, float] = {}
-    for family in families:
-        values = adjust([out[i].pvalue for i in family], method)  # type: ignore[misc]
-        adjusted.update((i, min(1.0, a)) for i, a in zip(family, values, strict=True))
+    for members in (family, vs_rest):
+        values = adjust([out[i].pvalue for i in members], method)  # type: ignore[misc]
+        adjusted.update((i, min(1.0, a)) for i, a in zip(members, values, strict=True))
     for i, f in enumerate(out):
         if f.verdict == ev.IMPOSSIBLE:
-            out[i] = dataclasses.replace(f, severity=ALARM)
+            out[i] = ev.with_values(f, severity=ALARM)
         elif i in adjusted:
             out[i] = _judged(f, adjusted[i])
     return tuple(out)
@@ -188,8 +191,8 @@ def _judged(f: Finding, adjusted_p: float) -> Finding:
         reason = _crossing_reason(f, adjusted_p, sev)
     else:
         reason = f.reason if verdict == ev.TOO_LITTLE_DATA else _in_control_reason(f, adjusted_p)
-    return dataclasses.replace(f, adjusted_pvalue=adjusted_p, severity=sev, verdict=verdict,
-                               reason=reason)
+    return ev.with_values(f, adjusted_pvalue=adjusted_p, severity=sev, verdict=verdict,
+                          reason=reason)
 
 
 def _crossing_reason(f: Finding, adjusted_p: float, sev: str) -> str:
@@ -341,8 +344,11 @@ def decide(
     vs_rest = sorted((f for f in judged if f.kind == ev.KIND_VS_REST and crossed(f)),
                      key=lambda f: f.adjusted_pvalue or 1.0)
     for key in sorted(set(groups) | set(by_key), key=lambda k: (k[1], k[0] or "")):
-        decisions += _decide_key(key, groups.get(key, []), by_key.get(key, []), thresholds,
-                                 shift_id, history.get(key, ()), names, vs_rest)
+        found, alarms = groups.get(key, []), by_key.get(key, [])
+        if not alarms and not any(crossed(f) or f.verdict == ev.FAULT for f in found):
+            continue  # no alarm to touch and nothing crossed: _decide_key would decide nothing
+        decisions += _decide_key(key, found, alarms, thresholds, shift_id,
+                                 history.get(key, ()), names, vs_rest)
     return PolicyResult(judged, tuple(decisions))
 
 
@@ -370,7 +376,7 @@ def _decide_key(key, found, alarms, thresholds, shift_id, crossed_before, names,
     live = [a for a in alarms if a.state in ACTIVE_STATES and a not in covering]
     if worst is not None:
         if worst.verdict == ev.FAULT and worst.severity is None:
-            worst = dataclasses.replace(worst, severity=ALARM)
+            worst = ev.with_values(worst, severity=ALARM)
         figs = _figures(worst, names, vs_rest if kind == ev.KIND_BETWEEN else ())
         target = (covering or live or [None])[0]
         if kind == ev.KIND_SEQUENTIAL:

@@ -3,6 +3,7 @@ power ("too little data"), and the cases where no test is run."""
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 
 import numpy as np
@@ -269,3 +270,31 @@ def test_refining_only_near_decisions_gives_the_same_verdicts_as_refining_everyw
             if f.kind == ev.KIND_BASELINE and f.method == "asymptotic":
                 assert f.method_reason == ev.FAR_REASON
     assert crossings > 0  # the comparison covered decisions, not only quiet shifts
+
+
+# --------------------------------------------------------------------------- batch helpers
+
+
+def test_batch_helpers_equal_their_one_line_versions():
+    # the vectorised builders must give exactly what the one-line functions give
+    rng = np.random.default_rng(20260105)
+    obs = rng.poisson(4.0, (40, 6))
+    exp = rng.gamma(2.0, 2.0, (40, 6))
+    res = rng.normal(0.0, 2.5, (40, 6))
+    res[3, 2] = np.nan
+    res[5] = np.nan
+    res[7, :2] = 3.0  # a tie
+    ref = rng.dirichlet(np.ones(6), 40)
+    rows = ev.top_shifts_rows(CATS, obs, exp, res, ref)
+    assert rows == [ev.top_shifts(CATS, obs[i], exp[i], res[i], ref[i]) for i in range(40)]
+    mask = rng.random((40, 6)) > 0.2
+    mask[0] = False
+    exp[1, 0] = np.nan
+    assert ev.cochran_rows(exp, mask).tolist() == [ev.cochran_ok(exp[i][mask[i]]) for i in range(40)]
+
+
+def test_with_values_is_a_replace():
+    f = by(run({"L1": [30, 25, 15, 12, 10, 8], "L2": [31, 24, 16, 11, 10, 8]}), ev.KIND_BASELINE, "L1")
+    assert ev.with_values(f, severity="alarm", adjusted_pvalue=0.5) == dataclasses.replace(
+        f, severity="alarm", adjusted_pvalue=0.5)
+    assert ev.with_values(f) == f and ev.with_values(f) is not f

@@ -9,7 +9,7 @@ from qcfit.stats.homogeneity import bergsma_v, compare_each_to_rest, compare_gro
 from qcfit.stats.intervals import multinomial_intervals
 from qcfit.stats.multiplicity import adjust_pvalues
 from qcfit.stats.power import chisq_power, detectable_effect, sample_size_for_power
-from qcfit.stats.rate import poisson_rate_interval, rate_test
+from qcfit.stats.rate import poisson_isf, poisson_rate_interval, poisson_sf, rate_test
 from qcfit.stats.residuals import (
     CategoryShift,
     adjusted_residuals_gof,
@@ -81,7 +81,9 @@ __all__ = [
     "expected_table",
     "fit_to_baseline",
     "multinomial_intervals",
+    "poisson_isf",
     "poisson_rate_interval",
+    "poisson_sf",
     "rate_test",
     "sample_size_for_power",
     "top_categories",

@@ -36,7 +36,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 from scipy.special import gammaln, xlog1py, xlogy
 
 from qcfit.errors import InvalidArgumentError
@@ -160,8 +160,14 @@ def asymptotic_pvalue(statistic: np.ndarray, dof: np.ndarray) -> np.ndarray:
     """Upper tail of chi-square(dof) at ``statistic``; NaN where dof < 1."""
     statistic = np.asarray(statistic, dtype=float)
     dof = np.asarray(dof, dtype=float)
+    df = np.where(dof >= 1, dof, np.nan)
+    if np.isfinite(statistic).all() and np.isfinite(dof).all():
+        # scipy.stats.chi2.sf's values (chdtrc above 0, 1 at or below 0, NaN for a NaN dof)
+        # without its per-call argument handling, which costs more than the function
+        tail = special.chdtrc(np.where(np.isnan(df), 1.0, df), np.maximum(statistic, 0.0))
+        return np.where(np.isnan(df), np.nan, np.where(statistic > 0, tail, 1.0))
     with np.errstate(invalid="ignore"):
-        out = stats.chi2.sf(statistic, np.where(dof >= 1, dof, np.nan))
+        out = stats.chi2.sf(statistic, df)
     return np.asarray(out, dtype=float)
 
 

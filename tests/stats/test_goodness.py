@@ -309,3 +309,18 @@ def test_invariant_under_relabelling_categories(counts, rnd):
         assert a.pvalue == pytest.approx(b.pvalue, rel=1e-9, abs=1e-12)
         assert 0.0 <= a.pvalue <= 1.0
         np.testing.assert_allclose(a.adjusted_residuals[perm], b.adjusted_residuals, atol=1e-12)
+
+
+def test_asymptotic_pvalue_equals_scipy_chi2_sf_bit_for_bit():
+    # the fast path (scipy.special.chdtrc) must give scipy.stats.chi2.sf's values, including
+    # statistic 0 or below (p = 1) and dof < 1 (NaN)
+    from scipy import stats
+
+    from qcfit.stats.pvalues import asymptotic_pvalue
+    rng = np.random.default_rng(20260105)
+    t = np.concatenate([rng.gamma(2.0, 10.0, 5000), [0.0, -1.0, 1e-300, 1e5]])
+    dof = np.concatenate([rng.integers(-1, 500, 5000), [3, 3, 0, 2]]).astype(float)
+    with np.errstate(invalid="ignore"):
+        ref = stats.chi2.sf(t, np.where(dof >= 1, dof, np.nan))
+    assert np.array_equal(asymptotic_pvalue(t, dof), ref, equal_nan=True)
+    assert asymptotic_pvalue(np.inf, 2.0) == 0.0  # outside the fast path: scipy's answer

@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from qcfit.errors import InvalidArgumentError
-from qcfit.stats import poisson_rate_interval, rate_test
+from qcfit.stats import poisson_isf, poisson_rate_interval, poisson_sf, rate_test
 
 
 def test_r_poisson_test_example_interval():
@@ -66,3 +66,24 @@ def test_bad_input():
         rate_test(1, -10, 0.1)
     with pytest.raises(InvalidArgumentError, match="defects: NaN"):
         rate_test(float("nan"), 10, 0.1)
+
+
+def test_poisson_tail_functions_equal_scipy_stats_bit_for_bit():
+    # poisson_sf / poisson_isf skip scipy.stats' argument handling; the values must not move
+    rng = np.random.default_rng(20260105)
+    mu = np.concatenate([rng.gamma(1.0, 20.0, 5000), [0.0, 1e-9, 3.7, 1e4]])
+    k = np.concatenate([rng.integers(-3, 200, 5000).astype(float), [0.5, -0.5, 2.7, 0.0]])
+    q = np.concatenate([rng.uniform(1e-6, 0.3, 5000), [0.01, 0.05, 0.5, 1e-12]])
+    assert np.array_equal(poisson_sf(k, mu), stats.poisson.sf(k, mu))
+    assert np.array_equal(poisson_isf(q, mu), stats.poisson.isf(q, mu))
+    # outside the fast path: scipy.stats' own answer (NaN for a negative mean, q = 0 or 1)
+    assert np.array_equal(poisson_sf([1.0, 2.0], [-1.0, 2.0]), stats.poisson.sf([1.0, 2.0], [-1.0, 2.0]),
+                          equal_nan=True)
+    assert np.array_equal(poisson_isf([0.0, 1.0], [2.0, 2.0]), stats.poisson.isf([0.0, 1.0], [2.0, 2.0]))
+
+
+def test_rate_test_without_interval_has_the_same_pvalues():
+    d, u = np.array([0, 2, 7, 30]), np.array([50.0, 100.0, 0.0, 400.0])
+    full, bare = rate_test(d, u, 0.03), rate_test(d, u, 0.03, interval=False)
+    assert np.array_equal(full.pvalue, bare.pvalue, equal_nan=True)
+    assert np.isnan(bare.ci_low).all() and np.isnan(bare.ci_high).all()
