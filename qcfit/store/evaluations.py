@@ -11,6 +11,7 @@ re-evaluating marks the old one superseded in the same transaction that inserts 
 from __future__ import annotations
 
 import datetime as dt
+import operator
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
@@ -60,6 +61,8 @@ def insert_evaluation(conn: Connection, values: Mapping[str, Any]) -> int:
 
 _JSON_COLUMNS = frozenset(c.name for c in finding.columns if isinstance(c.type, JSON))
 _INSERT_COLUMNS = ("evaluation_id", *FINDING_COLUMNS)
+_PICK = operator.itemgetter(*FINDING_COLUMNS)
+_JSON_AT = tuple(i for i, c in enumerate(_INSERT_COLUMNS) if c in _JSON_COLUMNS)
 
 
 def _placeholder(conn: Connection) -> str:
@@ -67,19 +70,20 @@ def _placeholder(conn: Connection) -> str:
 
 
 def insert_findings(conn: Connection, evaluation_id: int, rows: Iterable[Mapping[str, Any]]) -> int:
-    """Insert finding rows (one executemany); returns how many.
+    """Insert finding rows (one executemany); returns how many. Each row has every column of
+    :data:`FINDING_COLUMNS` (KeyError otherwise).
 
     The driver's own executemany with the JSON columns written by :mod:`qcfit.store.jsontext`
     (the text the JSON column type would write): a backfill inserts some 150 rows a shift,
     where SQLAlchemy's per-row parameter processing cost more than the insert itself.
     """
-    json_cols = [c in _JSON_COLUMNS for c in FINDING_COLUMNS]
+    pick = _PICK  # one C call per row: the values in column order (a missing key is an error)
+    dumps = jsontext.dumps
     batch = []
     for r in rows:
-        values = [evaluation_id]
-        for c, is_json in zip(FINDING_COLUMNS, json_cols, strict=True):
-            v = r.get(c)
-            values.append(jsontext.dumps(v) if is_json else v)  # None -> 'null', as the type does
+        values = [evaluation_id, *pick(r)]
+        for j in _JSON_AT:
+            values[j] = dumps(values[j])  # None -> 'null', as the JSON type writes it
         batch.append(tuple(values))
     if batch:
         mark, quote = _placeholder(conn), conn.dialect.identifier_preparer.quote
