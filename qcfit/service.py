@@ -40,11 +40,13 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import gc
 import logging
 import math
 import time
 from collections import Counter
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -519,14 +521,42 @@ def evaluate_shifts(
     run = _Run(engine, config, now, versions, os_user, extra, own_stage and extra is not None)
     size = max(1, chunk)
     out: list[EvaluationSummary] = []
-    for start in range(0, len(shifts), size):
-        part, rest = shifts[start:start + size], shifts[start + size:]
-        done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
-        out += [_labelled(s, run, asked) for s in done]
-        if progress is not None:
-            for i in range(len(out) - len(part), len(out)):
-                progress(i + 1, len(shifts), out[i])
+    with _few_collections(len(shifts) > 1):
+        for start in range(0, len(shifts), size):
+            part, rest = shifts[start:start + size], shifts[start + size:]
+            done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
+            out += [_labelled(s, run, asked) for s in done]
+            if progress is not None:
+                for i in range(len(out) - len(part), len(out)):
+                    progress(i + 1, len(shifts), out[i])
     return out
+
+
+#: objects allocated between two youngest-generation collections of the cycle collector during
+#: a run of several shifts (Python's default is 700)
+RUN_GC_THRESHOLD = 100_000
+
+
+@contextmanager
+def _few_collections(active: bool) -> Iterator[None]:
+    """Run with the cycle collector's youngest generation collected every
+    :data:`RUN_GC_THRESHOLD` allocations instead of every 700, then restore the thresholds.
+
+    An evaluation allocates hundreds of thousands of short-lived containers (findings, rows,
+    tuples) but builds almost no reference cycles, which plain reference counting frees; with
+    the default threshold the collector kept walking the run's live objects and took about a
+    fifth of a backfill's CPU time (180 shifts x 50 lines: 11.8 -> 9.2 ms a shift). Garbage in
+    cycles is still collected, only less often.
+    """
+    if not active:
+        yield
+        return
+    old = gc.get_threshold()
+    gc.set_threshold(max(RUN_GC_THRESHOLD, old[0]), *old[1:])
+    try:
+        yield
+    finally:
+        gc.set_threshold(*old)
 
 
 def due_shifts(engine: Any, config: Any, *, now: dt.datetime,

@@ -316,6 +316,23 @@ def test_same_shift_same_seed_across_stores(tmp_path, plant_config_text):
     assert seeds[0] == seeds[1]
 
 
+def test_a_run_collects_cycles_less_often_and_restores_the_thresholds(plant):
+    import gc
+
+    config, engine, _ = plant
+    shifts = shifts_from(ShiftCalendar.from_config(config), "2026-01-06_A", 3)
+    rng = np.random.default_rng(4)
+    for s in shifts:
+        load_counts(engine, s, {ln: healthy(300, rng) for ln in LINES})
+    before = gc.get_threshold()
+    during = []
+    done = service.evaluate_shifts(engine, config, shifts, now=after(shifts[-1]), chunk=2,
+                                   progress=lambda i, n, summary: during.append(gc.get_threshold()))
+    assert all(s.ok for s in done) and len(during) == 3
+    assert all(t[0] == max(service.RUN_GC_THRESHOLD, before[0]) for t in during)
+    assert gc.get_threshold() == before
+
+
 def test_backfill_in_chunks_equals_shift_by_shift(tmp_path, plant_config_text):
     text = plant_text(plant_config_text, min_effect_w=0.3, min_effect_v=0.3, mc_draws=2000)
     results = []
