@@ -13,7 +13,7 @@ import datetime as dt
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from sqlalchemy import and_, insert, or_, select, update
+from sqlalchemy import and_, bindparam, insert, or_, select, update
 from sqlalchemy.engine import Connection
 
 from qcfit.store.schema import alarm, alarm_event, baseline_version, shift
@@ -105,13 +105,20 @@ def alarms_around_shift(conn: Connection, shift_id: int) -> tuple[list[dict[str,
     return [dict(r) for r in rows], start
 
 
+_INSERT_ALARM = insert(alarm)
+_UPDATE_ALARM = update(alarm).where(alarm.c.id == bindparam("alarm_row_id"))
+_INSERT_EVENT = insert(alarm_event)
+
+
 def insert_alarm(conn: Connection, values: Mapping[str, Any]) -> int:
-    result = conn.execute(insert(alarm).values(**values))
+    result = conn.execute(_INSERT_ALARM, dict(values))
     return int(result.inserted_primary_key[0])
 
 
 def update_alarm(conn: Connection, alarm_id: int, values: Mapping[str, Any]) -> None:
-    conn.execute(update(alarm).where(alarm.c.id == alarm_id).values(**values))
+    """Set ``values`` (column -> value) on one alarm."""
+    if values:
+        conn.execute(_UPDATE_ALARM, {**values, "alarm_row_id": alarm_id})
 
 
 def set_state(
@@ -127,7 +134,7 @@ def set_state(
 
 
 def insert_event(conn: Connection, values: Mapping[str, Any]) -> int:
-    result = conn.execute(insert(alarm_event).values(**values))
+    result = conn.execute(_INSERT_EVENT, dict(values))
     return int(result.inserted_primary_key[0])
 
 

@@ -15,7 +15,7 @@ import operator
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
-from sqlalchemy import JSON, and_, func, insert, select, update
+from sqlalchemy import JSON, and_, bindparam, func, insert, select, update
 from sqlalchemy.engine import Connection
 
 from qcfit.store import jsontext
@@ -24,11 +24,17 @@ from qcfit.store.schema import evaluation, finding, shift
 FINDING_COLUMNS = tuple(c.name for c in finding.columns if c.name not in ("id", "evaluation_id"))
 
 
+# statements built once (a backfill runs them for every shift)
+_CURRENT = select(evaluation).where(evaluation.c.shift_id == bindparam("shift_row_id"),
+                                    evaluation.c.is_current)
+_SUPERSEDE = (update(evaluation).where(evaluation.c.id == bindparam("evaluation_id"))
+              .values(is_current=False, superseded_utc=bindparam("at_utc")))
+_INSERT = insert(evaluation)
+
+
 def current_evaluation(conn: Connection, shift_row_id: int) -> dict[str, Any] | None:
     """The current evaluation row of a shift (ok or failed), or None."""
-    row = conn.execute(
-        select(evaluation).where(evaluation.c.shift_id == shift_row_id, evaluation.c.is_current)
-    ).mappings().first()
+    row = conn.execute(_CURRENT, {"shift_row_id": shift_row_id}).mappings().first()
     return dict(row) if row else None
 
 
@@ -45,17 +51,13 @@ def supersede_current(conn: Connection, shift_row_id: int, at_utc: dt.datetime) 
     old = current_evaluation(conn, shift_row_id)
     if old is None:
         return None
-    conn.execute(
-        update(evaluation)
-        .where(evaluation.c.id == old["id"])
-        .values(is_current=False, superseded_utc=at_utc)
-    )
+    conn.execute(_SUPERSEDE, {"evaluation_id": old["id"], "at_utc": at_utc})
     return int(old["id"])
 
 
 def insert_evaluation(conn: Connection, values: Mapping[str, Any]) -> int:
     """Insert one evaluation row; returns its id."""
-    result = conn.execute(insert(evaluation).values(**values))
+    result = conn.execute(_INSERT, dict(values))
     return int(result.inserted_primary_key[0])
 
 
