@@ -91,17 +91,28 @@ def select_alarms(
     return [dict(r) for r in rows]
 
 
+_SHIFT_START = select(shift.c.start_utc).where(shift.c.id == bindparam("shift_row_id"))
+
+
+def _around():
+    start = bindparam("start_utc", type_=shift.c.start_utc.type)
+    return (_alarm_select()
+            .where(or_(alarm.c.state.in_(["open", "acknowledged"]),
+                       alarm.c.first_shift_id == bindparam("shift_row_id"),
+                       and_(_first.c.start_utc <= start, _last.c.start_utc >= start)))
+            .order_by(alarm.c.opened_utc.desc(), alarm.c.id.desc()))
+
+
+_AROUND = _around()
+
+
 def alarms_around_shift(conn: Connection, shift_id: int) -> tuple[list[dict[str, Any]],
                                                                   dt.datetime | None]:
     """Alarms open or acknowledged, plus every alarm (any state) raised by shift ``shift_id``
     or spanning it (first shift start <= its start <= last shift start); and that shift's
     start (naive UTC, None when the shift row is missing)."""
-    start = conn.execute(select(shift.c.start_utc).where(shift.c.id == shift_id)).scalar()
-    conds = [alarm.c.state.in_(["open", "acknowledged"]), alarm.c.first_shift_id == shift_id]
-    if start is not None:
-        conds.append(and_(_first.c.start_utc <= start, _last.c.start_utc >= start))
-    rows = conn.execute(_alarm_select().where(or_(*conds))
-                        .order_by(alarm.c.opened_utc.desc(), alarm.c.id.desc())).mappings()
+    start = conn.execute(_SHIFT_START, {"shift_row_id": shift_id}).scalar()
+    rows = conn.execute(_AROUND, {"shift_row_id": shift_id, "start_utc": start}).mappings()
     return [dict(r) for r in rows], start
 
 
