@@ -173,16 +173,31 @@ class Backlog:
         cal = ShiftCalendar.from_config(self.config)
         self.shifts = [s for s in cal.instances_between(now - dt.timedelta(days=days), now)
                        if s.end <= now]
-        rng = np.random.default_rng(seed)
+        self.rng = np.random.default_rng(seed)
+        self.skew_every = skew_every
+        self._load(self.shifts, now)
+
+    def _load(self, shifts: list, now: dt.datetime) -> None:
         rows = ["shift,line,category,count,units_inspected"]
-        for i, s in enumerate(self.shifts):
+        for i, s in enumerate(shifts):
             for line in LINES:
-                p = SKEW if (line in ("L1", "L2") and (i + 1) % skew_every == 0) else PROPS
-                for cat, c in zip(CATS, rng.multinomial(300, p), strict=True):
+                skewed = line in ("L1", "L2") and (i + 1) % self.skew_every == 0
+                for cat, c in zip(CATS, self.rng.multinomial(300, SKEW if skewed else PROPS),
+                                  strict=True):
                     rows.append(f"{s.id},{line},{cat},{int(c)},25000")
-        data = tmp_path / "backlog.csv"
+        data = self.dir / f"backlog-{shifts[0].id}.csv"
         data.write_text("\n".join(rows) + "\n", encoding="utf-8")
         load_counts_file(self.engine, self.config, data, now=now, os_user="test", host="test")
+
+    def extend_back(self, days: int) -> None:
+        """Counts for ``days`` more days before the first shift (due, oldest first, so the
+        next service run starts with them)."""
+        first = self.shifts[0].start
+        older = list(ShiftCalendar.from_config(self.config).instances_between(
+            first - dt.timedelta(days=days), first))
+        older = [s for s in older if s.start < first]
+        self._load(older, sch.utc_now())
+        self.shifts = older + self.shifts
 
     def argv(self, *args: str) -> list[str]:
         return ["--config", str(self.config_path), "--store", self.url, *args]
@@ -230,6 +245,8 @@ def plant_text(base: str, **extra: str) -> str:
     text = base.replace("[thresholds]\n", "[thresholds]\nmc_draws = 300\n", 1)
     text = text.replace("min_effect_w = 0.10", "min_effect_w = 0.3")
     text = text.replace("min_effect_v = 0.10", "min_effect_v = 0.3")
+    # a baseline in force long before the backlog, which the kill test extends into the past
+    text = text.replace("effective = 2026-01-05", "effective = 2020-01-06")
     return text + "".join(f"\n{v}\n" for v in extra.values())
 
 
@@ -353,6 +370,8 @@ def test_kill_9_at_random_points_loses_and_duplicates_nothing(
     try:
         for i in range(20):
             before = bl.evaluated()
+            if len(bl.shifts) - before < 400:  # however fast evaluation gets, kill inside it
+                bl.extend_back(120)
             pid = zygote.spawn(bl.argv("serve", "--in-process"), tmp_path / f"serve-{i}.log")
             if i % 4:  # anywhere: start-up, schema check, lock, scheduler, evaluation
                 time.sleep(rng.uniform(0.0, 1.0))
