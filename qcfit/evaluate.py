@@ -310,16 +310,24 @@ def top_shifts_rows(
 ) -> list[tuple[CategoryShift, ...]]:
     """:func:`top_shifts` of each row of (lines x categories) arrays, with one sort for all rows
     and plain Python numbers after that (same categories, same numbers as row by row)."""
+    return _top_rows([codes] * np.shape(residuals)[0], observed, expected, residuals, reference,
+                     limit=limit)
+
+
+def _top_rows(codes_of_rows: Sequence[Sequence[str]], observed: np.ndarray,
+              expected: np.ndarray, residuals: np.ndarray, reference: np.ndarray, *,
+              limit: int = TOP_CATEGORIES) -> list[tuple[CategoryShift, ...]]:
+    """:func:`top_shifts_rows` with each row's own category codes (rows of several shifts)."""
     res = np.asarray(residuals, dtype=float)
     size = np.abs(res)
     orders = np.argsort(-size, axis=1, kind="stable").tolist()
     obs = np.asarray(observed, dtype=np.int64)
     totals = obs.sum(axis=1).tolist()
     out = []
-    for order, sz, r, o, e, ref, total in zip(
+    for order, sz, r, o, e, ref, total, codes in zip(
             orders, size.tolist(), res.tolist(), obs.tolist(),
             np.asarray(expected, dtype=float).tolist(),
-            np.asarray(reference, dtype=float).tolist(), totals, strict=True):
+            np.asarray(reference, dtype=float).tolist(), totals, codes_of_rows, strict=True):
         chosen = []
         for j in order:  # by |residual|, largest first (NaN last)
             if not sz[j] >= RESIDUAL_WORTH_NAMING or len(chosen) == limit:
@@ -426,11 +434,19 @@ def _gof_batch(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: int
                mode: str = "auto", levels: tuple[float, ...] | None = None,
                reason: str | None = None) -> list[Finding]:
     observed = np.stack([table.counts[j.index] for j in jobs]).astype(np.int64)
+    return _gof_rows(tuple(table.categories), jobs, observed, seed, draws, mode=mode,
+                     levels=levels, reason=reason)
+
+
+def _gof_rows(codes: tuple[str, ...], jobs: Sequence[_GofJob], observed: np.ndarray, seed: int,
+              draws: int, *, mode: str = "auto", levels: tuple[float, ...] | None = None,
+              reason: str | None = None) -> list[Finding]:
+    """Baseline findings of ``jobs`` (lines of one or several shifts with the category
+    ``codes``), ``observed`` their int64 count rows (lines x categories)."""
     props = np.stack([j.proportions for j in jobs])
     result = qstats.fit_to_baseline(
         observed, props, statistic="pearson", pvalue=mode, seed=seed, draws=draws,
         levels=levels or decision_levels(j.limits for j in jobs))
-    codes = tuple(table.categories)
     totals = observed.sum(axis=1)
     powers = chisq_powers([j.limits.min_effect_w for j in jobs], np.asarray(result.dof),
                           totals, [j.limits.alarm_level for j in jobs])
@@ -531,21 +547,7 @@ def fit_lines(
     could move across a decision level. Without ``family`` every line gets ``auto`` at the
     nominal levels.
     """
-    out: dict[int, Finding] = {}
-    jobs: list[_GofJob] = []
-    for i, line in enumerate(table.lines):
-        baseline = baselines.get(line)
-        if baseline is None:
-            out[i] = Finding(kind=KIND_BASELINE, line=line, verdict=NO_BASELINE,
-                             reason=f"no baseline in force for line {line} on {table.shift.date}",
-                             n=int(table.counts[i].sum()))
-            continue
-        job = _contained(KIND_BASELINE, line, baseline.version_id,
-                         lambda i=i, b=baseline: _gof_job(table, i, b, thresholds_for(thresholds, b)))
-        if isinstance(job, Finding):
-            out[i] = job
-        else:
-            jobs.append(job)
+    out, jobs = _fit_jobs(table, baselines, thresholds)
     gof_seed = derive_seed(seed, KIND_BASELINE)
     draws = int(getattr(thresholds, "mc_draws", 10_000))
     try:
@@ -561,9 +563,36 @@ def fit_lines(
                        lambda j=j: _gof_batch(table, [j], gof_seed, draws)[0])
             for j in jobs
         ]
+    return _in_line_order(out, jobs, found)
+
+
+def _in_line_order(out: dict[int, Finding], jobs: Sequence[_GofJob], found: Sequence[Finding]
+                   ) -> list[Finding]:
     for job, finding in zip(jobs, found, strict=True):
         out[job.index] = finding
     return [out[i] for i in sorted(out)]
+
+
+def _fit_jobs(table: CountTable, baselines: Mapping[str, BaselineRef | None], thresholds: Any
+              ) -> tuple[dict[int, Finding], list[_GofJob]]:
+    """The lines of ``table`` to fit (jobs), and the findings of those that cannot be fitted
+    (no baseline, a category the baseline lacks, a fault) by line index."""
+    out: dict[int, Finding] = {}
+    jobs: list[_GofJob] = []
+    for i, line in enumerate(table.lines):
+        baseline = baselines.get(line)
+        if baseline is None:
+            out[i] = Finding(kind=KIND_BASELINE, line=line, verdict=NO_BASELINE,
+                             reason=f"no baseline in force for line {line} on {table.shift.date}",
+                             n=int(table.counts[i].sum()))
+            continue
+        job = _contained(KIND_BASELINE, line, baseline.version_id,
+                         lambda i=i, b=baseline: _gof_job(table, i, b, thresholds_for(thresholds, b)))
+        if isinstance(job, Finding):
+            out[i] = job
+        else:
+            jobs.append(job)
+    return out, jobs
 
 
 FAR_REASON = ("asymptotic chi-square: Cochran's rule holds and the multiplicity-adjusted "
@@ -587,6 +616,13 @@ def _gof_two_pass(table: CountTable, jobs: Sequence[_GofJob], seed: int, draws: 
     if not jobs:
         return []
     first = _gof_batch(table, jobs, seed, draws, mode="asymptotic", reason=FAR_REASON)
+    return _gof_refine(table, jobs, first, seed, draws, family, method)
+
+
+def _gof_refine(table: CountTable, jobs: Sequence[_GofJob], first: list[Finding], seed: int,
+                draws: int, family: Sequence[float], method: str) -> list[Finding]:
+    """The second pass of :func:`_gof_two_pass`: ``first`` holds the asymptotic findings of
+    ``jobs``; the lines where a refined p-value could change a decision are recomputed."""
     own = np.array([f.pvalue if f.testable else np.nan for f in first], dtype=float)
     others = np.array([p for p in family if p is not None and math.isfinite(p)], dtype=float)
     mine = np.flatnonzero(np.isfinite(own))
@@ -746,13 +782,20 @@ def _each_vs_rest(table: CountTable, limits: Any, seed: int) -> list[Finding]:
         if fast[i]:
             return _vs_rest_finding(table, counts, i, big, i, limits, power,
                                     method_reason=_large_text(low[i], small[i]), col=col)
-        pair = np.stack([counts[i], col - counts[i]])
-        res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
-                                          seed=seed, **_mc_options(limits))
-        return _vs_rest_finding(table, counts, i, res, 0, limits, power, col=col)
+        return _vs_rest_alone(table, counts, col, i, limits, power, seed)
 
     return [out[i] if i in out else _contained(KIND_VS_REST, line, None, lambda i=i: one(i))
             for i, line in enumerate(table.lines)]
+
+
+def _vs_rest_alone(table: CountTable, counts: np.ndarray, col: np.ndarray, i: int, limits: Any,
+                   power: float, seed: int) -> Finding:
+    """Line ``i`` against the rest of its shift with the ``auto`` p-value (for the lines whose
+    2 x c' table fails Cochran's rule)."""
+    pair = np.stack([counts[i], col - counts[i]])
+    res = qstats.compare_each_to_rest(pair, statistic="pearson", pvalue="auto",
+                                      seed=seed, **_mc_options(limits))
+    return _vs_rest_finding(table, counts, i, res, 0, limits, power, col=col)
 
 
 def _vs_rest_batch(table: CountTable, counts: np.ndarray, rows: np.ndarray, res: Any,
@@ -893,40 +936,61 @@ def rate_lines(table: CountTable, baselines: Mapping[str, BaselineRef | None],
                thresholds: Any) -> list[Finding]:
     """Rate findings for the lines with units inspected and a baseline rate (p-values and
     power for all of them in one call each)."""
-    totals = table.counts.sum(axis=1)
-    units = np.asarray(table.units, dtype=float)
+    return [f for f in _rate_findings(_rate_jobs(table, baselines, thresholds)) if f is not None]
+
+
+@dataclass(frozen=True, slots=True)
+class _RateJob:
+    line: str
+    defects: int
+    units: float  # finite
+    baseline: BaselineRef  # with a rate
+    limits: Any  # thresholds after overrides
+
+
+def _rate_jobs(table: CountTable, baselines: Mapping[str, BaselineRef | None],
+               thresholds: Any) -> list[_RateJob]:
+    """The lines of ``table`` with a baseline rate and known units inspected."""
+    defects = table.counts.sum(axis=1).astype(np.int64).tolist()
+    units = np.asarray(table.units, dtype=float).tolist()
     jobs = []
     for i, line in enumerate(table.lines):
         b = baselines.get(line)
         if b is not None and b.rate is not None and math.isfinite(units[i]):
-            jobs.append((i, line, b, thresholds_for(thresholds, b)))
+            jobs.append(_RateJob(line, defects[i], units[i], b, thresholds_for(thresholds, b)))
+    return jobs
+
+
+def _rate_findings(jobs: Sequence[_RateJob], *, keep_none: bool = False
+                   ) -> list[Finding | None]:
+    """The findings of rate ``jobs`` (lines of one or several shifts), p-values and power of
+    all of them in one call each; line by line if that fails."""
     if not jobs:
         return []
-    live = np.array([units[i] > 0 and b.rate > 0 for i, _, b, _ in jobs])
-    mu0 = np.array([units[i] * b.rate for i, _, b, _ in jobs])
-    powers = poisson_powers(np.where(live, mu0, 0.0), [t.min_rate_ratio for *_, t in jobs],
-                            [t.alarm_level for *_, t in jobs])
+    live = np.array([j.units > 0 and j.baseline.rate > 0 for j in jobs])
+    mu0 = np.array([j.units * j.baseline.rate for j in jobs])
+    powers = poisson_powers(np.where(live, mu0, 0.0), [j.limits.min_rate_ratio for j in jobs],
+                            [j.limits.alarm_level for j in jobs])
     pvalues = np.full(len(jobs), np.nan)
     if live.any():
-        idx = np.flatnonzero(live)
-        test = qstats.rate_test(totals[[jobs[k][0] for k in idx]], units[[jobs[k][0] for k in idx]],
-                                np.array([jobs[k][2].rate for k in idx], dtype=float),
+        idx = np.flatnonzero(live).tolist()
+        test = qstats.rate_test(np.array([jobs[k].defects for k in idx], dtype=np.int64),
+                                np.array([jobs[k].units for k in idx], dtype=float),
+                                np.array([jobs[k].baseline.rate for k in idx], dtype=float),
                                 interval=False)
         pvalues[idx] = np.asarray(test.pvalue, dtype=float)
-    defects = totals.astype(np.int64).tolist()
-    inspected = units.tolist()
     figures = [{"power": p, "pvalue": q} if ok else {}
                for p, q, ok in zip(powers.tolist(), pvalues.tolist(), live.tolist(), strict=True)]
     try:
-        out = [rate_finding(line, defects[i], inspected[i], b, limits, **figures[k])
-               for k, (i, line, b, limits) in enumerate(jobs)]
+        out = [rate_finding(j.line, j.defects, j.units, j.baseline, j.limits, **figures[k])
+               for k, j in enumerate(jobs)]
     except Exception:
         log.warning("rate findings failed together; retrying line by line")
-        out = [_contained(KIND_RATE, line, b.version_id,
-                          lambda i=i, line=line, b=b, limits=limits, extra=figures[k]: rate_finding(
-                              line, defects[i], inspected[i], b, limits, **extra))
-               for k, (i, line, b, limits) in enumerate(jobs)]
-    return [f for f in out if f is not None]
+        out = [_contained(KIND_RATE, j.line, j.baseline.version_id,
+                          lambda j=j, extra=figures[k]: rate_finding(
+                              j.line, j.defects, j.units, j.baseline, j.limits, **extra))
+               for k, j in enumerate(jobs)]
+    return out if keep_none else [f for f in out if f is not None]
 
 
 # ---------------------------------------------------------------------------------------
@@ -970,3 +1034,229 @@ def _check_table(table: CountTable) -> None:
         raise InvalidArgumentError("table.counts", f"has a negative count at {list(map(int, bad))}")
     if np.asarray(table.units).shape != (len(table.lines),):
         raise InvalidArgumentError("table.units", "needs one value per line")
+
+
+# ---------------------------------------------------------------------------------------
+# several shifts at once
+
+
+def evaluate_tables(
+    tables: Sequence[CountTable],
+    baselines: Sequence[Mapping[str, BaselineRef | None]],
+    thresholds: Any,
+    *,
+    seeds: Sequence[int],
+    extras: Sequence[Iterable[Finding]] | None = None,
+) -> list[tuple[Finding, ...]]:
+    """Every finding of several shifts: element i equals ``evaluate_table(tables[i],
+    baselines[i], thresholds, seed=seeds[i], extra=extras[i])``, field for field.
+
+    The array work is done once for the lines of all shifts (baseline fits, rate tests, power,
+    residuals and top categories, each line against the pooled rest of its own shift); what
+    belongs to one shift stays per shift (its seeds, the multiplicity family of its fits, the
+    between-lines table, the refinement of p-values near a decision). A line whose test
+    raises gives its fault finding as in :func:`evaluate_table`; if a step over all shifts
+    fails, the shifts are evaluated one by one with :func:`evaluate_table` instead.
+    """
+    from qcfit.errors import InvalidArgumentError
+
+    count = len(tables)
+    if len(baselines) != count or len(seeds) != count or (
+            extras is not None and len(extras) != count):
+        raise InvalidArgumentError(
+            "tables", "needs one baseline mapping, one seed (and one extra) per table")
+    more = [tuple(x) for x in extras] if extras is not None else [()] * count
+    for table in tables:
+        _check_table(table)
+    try:
+        return _evaluate_chunk(list(tables), list(baselines), thresholds, list(seeds), more)
+    except Exception:
+        log.warning("evaluation of %d shifts together failed; evaluating them one by one",
+                    count, exc_info=True)
+        return [evaluate_table(t, b, thresholds, seed=s, extra=x)
+                for t, b, s, x in zip(tables, baselines, seeds, more, strict=True)]
+
+
+def _evaluate_chunk(tables: list[CountTable], baselines: list[Mapping[str, BaselineRef | None]],
+                    thresholds: Any, seeds: list[int], extras: list[tuple[Finding, ...]]
+                    ) -> list[tuple[Finding, ...]]:
+    rates = _rates_many(tables, baselines, thresholds)
+    between = [_contained(KIND_BETWEEN, None, None,
+                          lambda t=t, s=s: _between(t, thresholds, derive_seed(s, KIND_BETWEEN)))
+               for t, s in zip(tables, seeds, strict=True)]
+    rests = _vs_rest_many(tables, thresholds, [derive_seed(s, KIND_VS_REST) for s in seeds])
+    families = [[f.pvalue for f in [*r, b] if f.testable]
+                for r, b in zip(rates, between, strict=True)]
+    fits = _fits_many(tables, baselines, thresholds, seeds, families)
+    return [tuple(f + r + [b] + v + list(x))
+            for f, r, b, v, x in zip(fits, rates, between, rests, extras, strict=True)]
+
+
+def _split(items: Sequence[Any], sizes: Sequence[int]) -> list[list[Any]]:
+    """``items`` cut into consecutive pieces of ``sizes``."""
+    out, at = [], 0
+    for n in sizes:
+        out.append(list(items[at:at + n]))
+        at += n
+    return out
+
+
+def _rates_many(tables: Sequence[CountTable], baselines: Sequence[Mapping[str, Any]],
+                thresholds: Any) -> list[list[Finding]]:
+    jobs = [_rate_jobs(t, b, thresholds) for t, b in zip(tables, baselines, strict=True)]
+    found = _rate_findings([j for part in jobs for j in part], keep_none=True)
+    return [[f for f in part if f is not None]
+            for part in _split(found, [len(part) for part in jobs])]
+
+
+def _fits_many(tables: Sequence[CountTable], baselines: Sequence[Mapping[str, Any]],
+               thresholds: Any, seeds: Sequence[int], families: Sequence[Sequence[float]]
+               ) -> list[list[Finding]]:
+    """:func:`fit_lines` of each shift with its ``family``: the asymptotic pass for the lines
+    of all shifts at once (per set of categories), the refinement shift by shift."""
+    draws = int(getattr(thresholds, "mc_draws", 10_000))
+    method = getattr(thresholds, "multiple_testing", "bh")
+    parts = [_fit_jobs(t, b, thresholds) for t, b in zip(tables, baselines, strict=True)]
+    groups: dict[tuple[str, ...], list[int]] = {}
+    for k, (table, (_, jobs)) in enumerate(zip(tables, parts, strict=True)):
+        if jobs:
+            groups.setdefault(tuple(table.categories), []).append(k)
+    first: dict[int, list[Finding]] = {}
+    for codes, ks in groups.items():
+        jobs = [j for k in ks for j in parts[k][1]]
+        observed = np.concatenate(
+            [tables[k].counts[[j.index for j in parts[k][1]]] for k in ks]).astype(np.int64)
+        found = _gof_rows(codes, jobs, observed, derive_seed(seeds[ks[0]], KIND_BASELINE), draws,
+                          mode="asymptotic", reason=FAR_REASON)
+        first.update(zip(ks, _split(found, [len(parts[k][1]) for k in ks]), strict=True))
+    out = []
+    for k, (table, (done, jobs)) in enumerate(zip(tables, parts, strict=True)):
+        found = (_gof_refine(table, jobs, first[k], derive_seed(seeds[k], KIND_BASELINE), draws,
+                             families[k], method) if jobs else [])
+        out.append(_in_line_order(done, jobs, found))
+    return out
+
+
+@dataclass(frozen=True, slots=True)
+class _RestShift:
+    """One shift whose lines are compared with the rest of it."""
+
+    at: int  # position in the chunk
+    table: CountTable
+    counts: np.ndarray  # int64, lines x categories
+    col: np.ndarray  # category totals
+    cols: np.ndarray  # categories with defects
+    seed: int
+
+
+def _vs_rest_many(tables: Sequence[CountTable], limits: Any, seeds: Sequence[int]
+                  ) -> list[list[Finding]]:
+    """:func:`_each_vs_rest` of each shift; the asymptotic tests of the lines of all shifts
+    in one call per number of categories with defects."""
+    out: list[list[Finding]] = [[] for _ in tables]
+    shifts = []
+    for k, (table, seed) in enumerate(zip(tables, seeds, strict=True)):
+        counts = np.ascontiguousarray(table.counts, dtype=np.int64)
+        col = counts.sum(axis=0)
+        cols = np.flatnonzero(col > 0)
+        if cols.size < 2 or (counts.sum(axis=1) > 0).sum() < 2:
+            why = "fewer than 2 lines or 2 categories with defects this shift"
+            out[k] = [Finding(kind=KIND_VS_REST, line=ln, verdict=NOT_TESTED, reason=why,
+                              n=int(counts[i].sum())) for i, ln in enumerate(table.lines)]
+        else:
+            shifts.append(_RestShift(k, table, counts, col, cols, seed))
+    if not shifts:
+        return out
+    totals = [int(s.col.sum()) for s in shifts]
+    powers = chisq_powers(limits.min_effect_v, [s.cols.size - 1 for s in shifts], totals,
+                          limits.alarm_level).tolist()
+    groups: dict[int, list[int]] = {}
+    for g, s in enumerate(shifts):
+        groups.setdefault(int(s.cols.size), []).append(g)
+    for members in groups.values():
+        found = _vs_rest_group([shifts[g] for g in members], [powers[g] for g in members],
+                               [totals[g] for g in members], limits)
+        for g, part in zip(members, found, strict=True):
+            out[shifts[g].at] = part
+    return out
+
+
+def _vs_rest_group(shifts: Sequence[_RestShift], powers: Sequence[float], totals: Sequence[int],
+                   limits: Any) -> list[list[Finding]]:
+    """Line-vs-rest findings of shifts with the same number of categories with defects."""
+    sizes = [len(s.table.lines) for s in shifts]
+    mine = np.concatenate([s.counts[:, s.cols] for s in shifts])
+    col = np.concatenate([np.broadcast_to(s.col[s.cols], (n, s.cols.size))
+                          for s, n in zip(shifts, sizes, strict=True)])
+    total = np.repeat(np.array([s.col.sum() for s in shifts]), sizes)
+    rows_n = mine.sum(axis=1)
+    share = col / total[:, None]
+    pair_e = np.stack([rows_n[:, None] * share, (total - rows_n)[:, None] * share], axis=1)
+    small = (pair_e < 5.0).mean(axis=(1, 2))  # 2 x c' expected counts per line: Cochran's rule
+    low = pair_e.min(axis=(1, 2))
+    fast = (rows_n > 0) & (low >= 1.0) & (small <= 0.2)
+    rest = col - mine
+    res = qstats.compare_with_rest(mine, rest, statistic="pearson")
+    at = np.repeat(np.arange(len(shifts)), sizes)
+    rows = np.flatnonzero(fast)
+    codes = [tuple(s.table.categories[j] for j in s.cols.tolist()) for s in shifts]
+    same = []
+    for power, n in zip(powers, totals, strict=True):
+        enough = power >= limits.power
+        same.append({
+            "kind": KIND_VS_REST, "verdict": TESTED if enough else TOO_LITTLE_DATA,
+            "reason": _power_reason(enough, power, limits.power, "V", limits.min_effect_v, n),
+            "effect_name": "V", "effect_floor": float(limits.min_effect_v),
+            "alarm_level": float(limits.alarm_level), "watch_level": float(limits.watch_level),
+            "power": power, "power_needed": float(limits.power)})
+    quick = _vs_rest_rows(res, rows, at[rows].tolist(), codes, same, mine, rest, low, small,
+                          [ln for s in shifts for ln in s.table.lines])
+    out: list[list[Finding]] = []
+    starts = np.cumsum([0, *sizes]).tolist()
+    for g, s in enumerate(shifts):
+        found = []
+        for i, line in enumerate(s.table.lines):
+            f = quick.get(starts[g] + i)
+            if f is None:
+                f = _contained(KIND_VS_REST, line, None,
+                               lambda s=s, i=i, p=powers[g]: _vs_rest_alone(
+                                   s.table, s.counts, s.col, i, limits, p, s.seed))
+            found.append(f)
+        out.append(found)
+    return out
+
+
+def _vs_rest_rows(res: Any, rows: np.ndarray, shift_of: list[int], codes: list[tuple[str, ...]],
+                  same: list[dict[str, Any]], mine: np.ndarray, rest: np.ndarray,
+                  low: np.ndarray, small: np.ndarray, lines: list[str]) -> dict[int, Finding]:
+    """:func:`_vs_rest_batch` for the ``rows`` of stacked shifts (``res`` from
+    :func:`qcfit.stats.compare_with_rest`), by stacked row."""
+    mine, rest = mine[rows], rest[rows]
+    rest_sum = rest.sum(axis=1)
+    rest_share = rest / np.maximum(rest_sum, 1)[:, None]  # rows without a rest: all 0
+    expected = np.asarray(res.expected, dtype=float)[rows]
+    residuals = np.asarray(res.adjusted_residuals, dtype=float)[rows]
+    tops = _top_rows([codes[g] for g in shift_of], mine, expected, residuals, rest_share)
+    field = {name: np.asarray(getattr(res, name))[rows].tolist()
+             for name in ("tested", "method_reason", "statistic", "dof", "pvalue",
+                          "effect_size", "method", "pvalue_se")}
+    n_mine = mine.sum(axis=1).tolist()
+    reasons = [_large_text(a, b) for a, b in zip(low[rows], small[rows], strict=True)]
+    per_row = zip(rows.tolist(), shift_of, mine.astype(float).tolist(), expected.tolist(),
+                  residuals.tolist(), expected.min(axis=1).tolist(), rest.astype(int).tolist(),
+                  strict=True)
+    out = {}
+    for k, (i, g, observed, exp, resid, smallest, rest_row) in enumerate(per_row):
+        if not field["tested"][k]:
+            out[i] = Finding(kind=KIND_VS_REST, line=lines[i], verdict=NOT_TESTED, n=n_mine[k],
+                             reason=str(field["method_reason"][k]))
+            continue
+        out[i] = Finding(
+            line=lines[i], statistic=float(field["statistic"][k]), dof=int(field["dof"][k]),
+            pvalue=float(field["pvalue"][k]), effect_size=float(field["effect_size"][k]),
+            method=str(field["method"][k]), method_reason=reasons[k],
+            mc_se=_opt_float(field["pvalue_se"][k]), n=n_mine[k], min_expected=smallest,
+            top_categories=tops[k], categories=codes[g], observed=tuple(observed),
+            expected=tuple(exp), adjusted_residuals=tuple(resid),
+            details={"rest_observed": rest_row}, **same[g])
+    return out

@@ -5,7 +5,13 @@ nothing of qcfit but :mod:`qcfit.errors`.
 """
 
 from qcfit.stats.goodness import fit_to_baseline
-from qcfit.stats.homogeneity import bergsma_v, compare_each_to_rest, compare_groups, cramers_v
+from qcfit.stats.homogeneity import (
+    bergsma_v,
+    compare_each_to_rest,
+    compare_groups,
+    compare_with_rest,
+    cramers_v,
+)
 from qcfit.stats.intervals import multinomial_intervals
 from qcfit.stats.multiplicity import adjust_pvalues
 from qcfit.stats.power import chisq_power, detectable_effect, sample_size_for_power
@@ -76,6 +82,7 @@ __all__ = [
     "chisq_power",
     "compare_each_to_rest",
     "compare_groups",
+    "compare_with_rest",
     "cramers_v",
     "detectable_effect",
     "expected_table",

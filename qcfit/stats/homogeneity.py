@@ -23,6 +23,7 @@ import numpy as np
 from scipy import stats
 from scipy.special import gammaln, xlogy
 
+from qcfit.errors import InvalidArgumentError
 from qcfit.stats import _checks, pvalues
 from qcfit.stats._enumerate import bounded_compositions, n_bounded
 from qcfit.stats.residuals import (
@@ -201,13 +202,7 @@ def compare_each_to_rest(
     cols = sub.sum(axis=0)
     pairs = np.stack([sub, cols - sub], axis=1)  # (r, 2, c')
     rows_n = sub.sum(axis=1)
-    tested = (rows_n > 0) & (rows_n < cols.sum()) & (cols.size >= 2)
-    e = expected_table(pairs)
-    x2 = contributions(pairs, e, "pearson").sum(axis=(1, 2))
-    t = x2 if statistic == "pearson" else contributions(pairs, e, "g").sum(axis=(1, 2))
-    dof = np.full(obs.shape[0], max(cols.size - 1, 0), dtype=np.int64)
-    p_asym = pvalues.asymptotic_pvalue(t, dof)
-    cochran = pvalues.cochran_rule(e.reshape(len(e), -1), np.ones((len(e), e[0].size), bool))
+    tested, e, x2, t, dof, p_asym, cochran, v = _pair_tests(pairs, statistic)
 
     def build(lines: np.ndarray):
         _, first, inverse = np.unique(rows_n[lines], return_index=True, return_inverse=True)
@@ -217,20 +212,69 @@ def compare_each_to_rest(
 
     res = pvalues.resolve(t, p_asym, cochran, tested, build, mode=mode, draws=draws, root=root,
                           levels=lv)
-    method, reason = res.method, res.reason
-    method[~tested] = "not-tested"
-    reason[~tested & (rows_n == 0)] = "not tested: no defects"
-    reason[~tested & (rows_n > 0)] = "not tested: no other line or category to compare with"
     adj = np.zeros(obs.shape)
     adj[:, keep_c] = adjusted_residuals_table(pairs, e)[:, 0, :]
     exp_full = np.zeros(obs.shape)
     exp_full[:, keep_c] = e[:, 0, :]
+    return _each_vs_rest_result(res, tested, rows_n, t, dof, v, exp_full, adj, statistic, root)
+
+
+def compare_with_rest(observed: object, rest: object, *, statistic: str = "pearson"
+                      ) -> EachVsRestResult:
+    """Rows of ``observed`` (m, c) each against its own pooled rest (the matching row of
+    ``rest``): m asymptotic tests of 2 x c tables (c >= 2 columns, each with defects in the
+    row's table; drop empty columns before).
+
+    Row i equals row i of :func:`compare_each_to_rest` with ``pvalue="asymptotic"`` on the
+    table the row came from, at its kept columns, bit for bit (same arithmetic on the same
+    2 x c table), so rows of several tables can be tested in one call. Shapes: (m,) and (m, c).
+    """
+    statistic = _checks.choice(statistic, "statistic", STATISTICS)
+    mine = _checks.counts(observed, "observed", ndim=(2,))
+    other = _checks.counts(rest, "rest", ndim=(2,))
+    if other.shape != mine.shape:
+        raise InvalidArgumentError("rest", f"shape {other.shape} does not match {mine.shape}")
+    pairs = np.stack([mine, other], axis=1)  # (m, 2, c)
+    rows_n = mine.sum(axis=1)
+    tested, e, x2, t, dof, p_asym, cochran, v = _pair_tests(pairs, statistic)
+    res = pvalues.resolve(t, p_asym, cochran, tested, _no_build, mode="asymptotic",
+                          draws=pvalues.DEFAULT_DRAWS, root=0, levels=pvalues.DEFAULT_LEVELS)
+    adj = adjusted_residuals_table(pairs, e)[:, 0, :]
+    return _each_vs_rest_result(res, tested, rows_n, t, dof, v, e[:, 0, :], adj, statistic, 0)
+
+
+def _no_build(lines: np.ndarray):  # asymptotic p-values never build a null model
+    raise AssertionError("no null model is needed for asymptotic p-values")
+
+
+def _pair_tests(pairs: np.ndarray, statistic: str):
+    """The asymptotic parts of (m, 2, c') row-vs-rest tables: tested, expected, X^2, the
+    statistic, dof, asymptotic p, Cochran's rule and V per row."""
+    rows_n = pairs[:, 0].sum(axis=1)
+    total = rows_n + pairs[:, 1].sum(axis=1)
+    c = pairs.shape[2]
+    tested = (rows_n > 0) & (rows_n < total) & (c >= 2)
+    e = expected_table(pairs)
+    x2 = contributions(pairs, e, "pearson").sum(axis=(1, 2))
+    t = x2 if statistic == "pearson" else contributions(pairs, e, "g").sum(axis=(1, 2))
+    dof = np.full(pairs.shape[0], max(c - 1, 0), dtype=np.int64)
+    p_asym = pvalues.asymptotic_pvalue(t, dof)
+    cochran = pvalues.cochran_rule(e.reshape(len(e), -1), np.ones((len(e), e[0].size), bool))
     with np.errstate(invalid="ignore", divide="ignore"):
-        v = np.sqrt(x2 / np.where(rows_n > 0, cols.sum(), 1))
+        v = np.sqrt(x2 / np.where(rows_n > 0, total, 1))
+    return tested, e, x2, t, dof, p_asym, cochran, v
+
+
+def _each_vs_rest_result(res, tested, rows_n, t, dof, v, expected, adj, statistic, root
+                         ) -> EachVsRestResult:
+    method, reason = res.method, res.reason
+    method[~tested] = "not-tested"
+    reason[~tested & (rows_n == 0)] = "not tested: no defects"
+    reason[~tested & (rows_n > 0)] = "not tested: no other line or category to compare with"
     ro = _checks.readonly
     return EachVsRestResult(
         statistic=ro(np.where(tested, t, np.nan)), dof=ro(dof), pvalue=ro(res.pvalue),
         effect_size=ro(np.where(tested, v, np.nan)), n=ro(rows_n.astype(np.int64)),
-        expected=ro(exp_full), adjusted_residuals=ro(np.where(tested[:, None], adj, 0.0)),
+        expected=ro(expected), adjusted_residuals=ro(np.where(tested[:, None], adj, 0.0)),
         pvalue_se=ro(res.se), draws=ro(res.draws), method=ro(method), method_reason=ro(reason),
         tested=ro(tested), statistic_name=statistic, seed=root)

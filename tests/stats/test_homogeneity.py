@@ -11,7 +11,13 @@ from scipy import stats
 from statsmodels.stats.contingency_tables import Table
 
 from qcfit.errors import InvalidArgumentError
-from qcfit.stats import HomogeneityResult, bergsma_v, compare_each_to_rest, compare_groups
+from qcfit.stats import (
+    HomogeneityResult,
+    bergsma_v,
+    compare_each_to_rest,
+    compare_groups,
+    compare_with_rest,
+)
 
 # Agresti, An Introduction to Categorical Data Analysis (2nd ed., 2007), p. 38-39: party
 # identification by gender (rows F, M; columns Democrat, Independent, Republican).
@@ -265,3 +271,35 @@ def test_invariant_under_relabelling_and_transposing(table, rnd):
     assert 0.0 <= a.effect_size_corrected <= a.effect_size + 1e-12
     np.testing.assert_allclose(b.adjusted_residuals, a.adjusted_residuals[np.ix_(rows, cols)],
                                atol=1e-10)
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(arrays(np.int64, st.tuples(st.integers(1, 5), st.integers(2, 6)), elements=st.integers(0, 60)),
+       arrays(np.int64, st.tuples(st.integers(1, 5), st.integers(2, 6)), elements=st.integers(0, 9)))
+def test_rows_of_several_tables_against_their_own_rest_equal_each_table_alone(a, b):
+    # compare_with_rest on the stacked rows of tables with the same number of columns with
+    # defects gives each row of compare_each_to_rest (asymptotic) at its kept columns, bit for bit
+    a[:, 0] += 1  # at least two columns with defects in each table
+    a[0, 1] += 1
+    b[:, -1] += 1
+    b[0, 0] += 1
+    parts, mine, rest = [], [], []
+    for t in (a, b):
+        keep = t.sum(axis=0) > 0
+        parts.append((compare_each_to_rest(t, pvalue="asymptotic"), keep))
+        mine.append(t[:, keep])
+        rest.append(t[:, keep].sum(axis=0) - t[:, keep])
+    if mine[0].shape[1] != mine[1].shape[1]:
+        mine, rest, parts = mine[:1], rest[:1], parts[:1]
+    together = compare_with_rest(np.concatenate(mine), np.concatenate(rest))
+    at = 0
+    for alone, keep in parts:
+        rows = slice(at, at + len(alone.n))
+        at += len(alone.n)
+        for name in ("statistic", "dof", "pvalue", "effect_size", "n", "pvalue_se", "tested"):
+            np.testing.assert_array_equal(getattr(together, name)[rows], getattr(alone, name))
+        np.testing.assert_array_equal(together.expected[rows], alone.expected[:, keep])
+        np.testing.assert_array_equal(together.adjusted_residuals[rows],
+                                      alone.adjusted_residuals[:, keep])
+        assert together.method[rows].tolist() == alone.method.tolist()
+        assert together.method_reason[rows].tolist() == alone.method_reason.tolist()
