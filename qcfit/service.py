@@ -336,10 +336,21 @@ def _record_failure(engine: Any, config: Any, shift: ShiftInstance, exc: BaseExc
 def _compute(config: Any, versions: Mapping[str, int], table: CountTable, seed: int,
              extra: ExtraFindings | None, memo: BaselineMemo | None = None
              ) -> tuple[ev.Finding, ...]:
-    baselines, problems = _baselines(config, versions, table, memo)
-    more = tuple(extra(table, baselines)) if extra is not None else ()
-    findings = ev.evaluate_table(table, baselines, config.thresholds, seed=seed, extra=more)
-    return tuple(_with_problems(findings, problems))
+    return _compute_many(config, versions, [table], [seed], extra, memo)[0]
+
+
+def _compute_many(config: Any, versions: Mapping[str, int], tables: Sequence[CountTable],
+                  seeds: Sequence[int], extra: ExtraFindings | None,
+                  memo: BaselineMemo | None = None) -> list[tuple[ev.Finding, ...]]:
+    """The findings of several shifts (in order: the chart stage of each shift rests on the
+    previous one), the per-shift tests of all of them in one :func:`evaluate.evaluate_tables`."""
+    found = [_baselines(config, versions, t, memo) for t in tables]
+    more = [tuple(extra(t, b)) if extra is not None else () for t, (b, _) in
+            zip(tables, found, strict=True)]
+    results = ev.evaluate_tables(tables, [b for b, _ in found], config.thresholds, seeds=seeds,
+                                 extras=more)
+    return [tuple(_with_problems(r, problems))
+            for r, (_, problems) in zip(results, found, strict=True)]
 
 
 def _log_done(summary: EvaluationSummary) -> None:
@@ -458,9 +469,9 @@ class _Run:
         to_mark = rest if self.marked is None else ()
         try:
             tables = _read_tables(self.engine, config, shifts)
-            work = [(s, shift_seed(config.thresholds.seed, s.id)) for s in shifts]
-            computed = [(s, seed, _compute(config, self.versions, t, seed, extra, self.memo))
-                        for (s, seed), t in zip(work, tables, strict=True)]
+            seeds = [shift_seed(config.thresholds.seed, s.id) for s in shifts]
+            computed = list(zip(shifts, seeds, _compute_many(
+                config, self.versions, tables, seeds, extra, self.memo), strict=True))
             def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
                 ids = ensure_shifts(conn, shifts)
                 told = alarmlog.shifts_with_events(conn, list(ids.values()))
