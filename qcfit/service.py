@@ -429,7 +429,7 @@ def _evaluate_one(engine: Any, config: Any, shift: ShiftInstance, *, now: dt.dat
     return summary, marked
 
 
-CHUNK = 25  # shifts per write transaction in a backfill
+CHUNK = 50  # shifts per write transaction in a backfill
 
 
 @dataclass(slots=True)

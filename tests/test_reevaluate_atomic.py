@@ -27,7 +27,7 @@ from qcfit.store.schema import alarm, chart_state, evaluation, finding, shift
 from qcfit.store.shifts import shift_row
 
 ROOT = Path(__file__).resolve().parents[1]
-N = 60  # shifts: a re-evaluation from shift 3 spans three write transactions of CHUNK
+N = 60  # shifts: a re-evaluation from shift 3 spans two write transactions of CHUNK (50)
 EARLY = 3  # the shift whose counts are corrected
 FIXED = {ln: [90, 60, 40, 30, 20, 10] for ln in ("L1", "L2", "L3", "L4")}  # invented
 
