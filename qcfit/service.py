@@ -195,8 +195,10 @@ def _opt_int(value: Any) -> int | None:
     return None if value is None else int(value)
 
 
-def finding_row(f: ev.Finding) -> dict[str, Any]:
-    """A finding as a ``finding`` table row (reason, figures and words go into ``details``).
+def finding_values(f: ev.Finding) -> tuple[Any, ...]:
+    """A finding as the values of a ``finding`` table row, in the order of
+    :data:`qcfit.store.evaluations.FINDING_COLUMNS` (reason, figures and words go into
+    ``details``; the JSON columns as Python values).
 
     The JSON columns are handed to the store's JSON text writer
     (:mod:`qcfit.store.jsontext`), which writes numpy values as plain numbers and non-finite
@@ -217,24 +219,22 @@ def finding_row(f: ev.Finding) -> dict[str, Any]:
         "expected": list(map(float, f.expected)),
         "adjusted_residuals": list(map(float, f.adjusted_residuals)),
     }
-    return {
-        "kind": f.kind,
-        "line": f.line,
-        "baseline_version_id": _opt_int(f.baseline_version_id),
-        "verdict": f.verdict,
-        "statistic": _opt_float(f.statistic),
-        "dof": _opt_int(f.dof),
-        "pvalue": _opt_float(f.pvalue),
-        "adjusted_pvalue": _opt_float(f.adjusted_pvalue),
-        "effect_size": _opt_float(f.effect_size),
-        "method": f.method,
-        "method_reason": f.method_reason,
-        "n": _opt_int(f.n),
-        "min_expected": _opt_float(f.min_expected),
-        "power": _opt_float(f.power),
-        "top_categories": [c.as_json() for c in f.top_categories],
-        "details": details,
-    }
+    return (f.kind, f.line, _opt_int(f.baseline_version_id), f.verdict, _opt_float(f.statistic),
+            _opt_int(f.dof), _opt_float(f.pvalue), _opt_float(f.adjusted_pvalue),
+            _opt_float(f.effect_size), f.method, f.method_reason, _opt_int(f.n),
+            _opt_float(f.min_expected), _opt_float(f.power),
+            [c.as_json() for c in f.top_categories], details)
+
+
+_VALUE_ORDER = ("kind", "line", "baseline_version_id", "verdict", "statistic", "dof", "pvalue",
+                "adjusted_pvalue", "effect_size", "method", "method_reason", "n", "min_expected",
+                "power", "top_categories", "details")
+assert _VALUE_ORDER == esql.FINDING_COLUMNS, "finding_values does not follow the finding table"
+
+
+def finding_row(f: ev.Finding) -> dict[str, Any]:
+    """A finding as a ``finding`` table row (column -> value); see :func:`finding_values`."""
+    return dict(zip(_VALUE_ORDER, finding_values(f), strict=True))
 
 
 _CROSSING_VERDICTS = frozenset({policy.WATCH, policy.ALARM, ev.IMPOSSIBLE})
@@ -286,7 +286,7 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
     old = esql.supersede_current(conn, row_id, to_utc_naive(now))
     eval_id = esql.insert_evaluation(
         conn, _evaluation_row(config, row_id, OK, seed, now, t0, None, True))
-    esql.insert_findings(conn, eval_id, [finding_row(f) for f in decided.findings])
+    esql.insert_finding_values(conn, eval_id, [finding_values(f) for f in decided.findings])
     applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
                                        shift_start_utc=to_utc_naive(shift.start), now=now,
                                        rows=alarm_rows, fresh=fresh)

@@ -72,18 +72,24 @@ def _placeholder(conn: Connection) -> str:
 
 
 def insert_findings(conn: Connection, evaluation_id: int, rows: Iterable[Mapping[str, Any]]) -> int:
-    """Insert finding rows (one executemany); returns how many. Each row has every column of
-    :data:`FINDING_COLUMNS` (KeyError otherwise).
+    """Insert finding rows (column -> value; every column of :data:`FINDING_COLUMNS`, KeyError
+    otherwise) in one executemany; returns how many."""
+    return insert_finding_values(conn, evaluation_id, map(_PICK, rows))
+
+
+def insert_finding_values(conn: Connection, evaluation_id: int,
+                          rows: Iterable[Sequence[Any]]) -> int:
+    """Insert finding rows given as values in the order of :data:`FINDING_COLUMNS` (the JSON
+    columns as Python values) in one executemany; returns how many.
 
     The driver's own executemany with the JSON columns written by :mod:`qcfit.store.jsontext`
     (the text the JSON column type would write): a backfill inserts some 150 rows a shift,
     where SQLAlchemy's per-row parameter processing cost more than the insert itself.
     """
-    pick = _PICK  # one C call per row: the values in column order (a missing key is an error)
     dumps = jsontext.dumps
     batch = []
     for r in rows:
-        values = [evaluation_id, *pick(r)]
+        values = [evaluation_id, *r]
         for j in _JSON_AT:
             values[j] = dumps(values[j])  # None -> 'null', as the JSON type writes it
         batch.append(tuple(values))
