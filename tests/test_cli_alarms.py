@@ -58,9 +58,10 @@ def test_evaluate_prints_a_one_screen_summary(cli):
 def test_evaluate_due_then_nothing_left(tmp_path, plant_config_text):
     config, engine = make_store(tmp_path, plant_config_text)
     cal = ShiftCalendar.from_config(config)
-    # the CLI reads the real clock: put data in a shift that ended about two days ago
-    recent = cal.ended_by(dt.datetime.now(dt.UTC) - dt.timedelta(days=3),
-                          dt.datetime.now(dt.UTC) - dt.timedelta(days=2))[0]
+    # the CLI reads the real clock: put data in the latest shift that ended two days ago or
+    # earlier (a plant with no weekend shifts may have none in the day before that)
+    recent = cal.ended_by(dt.datetime.now(dt.UTC) - dt.timedelta(days=10),
+                          dt.datetime.now(dt.UTC) - dt.timedelta(days=2))[-1]
     load_counts(engine, recent, {ln: healthy(100, np.random.default_rng(2)) for ln in LINES})
     engine.dispose()
     base = ["--config", str(tmp_path / "plant.toml"), "--store", f"sqlite:///{tmp_path / 'store.sqlite'}"]
