@@ -598,9 +598,10 @@ def _fit_jobs(table: CountTable, baselines: Mapping[str, BaselineRef | None], th
 FAR_REASON = ("asymptotic chi-square: Cochran's rule holds and the multiplicity-adjusted "
               "p-value is far from every decision level (or maps to a raw level below 0.001)")
 NEAR_FACTOR = 3.0  # refine when the adjusted p is within this factor of a level (as stats does)
-# qcfit.stats refines a Monte Carlo p-value near a raw level L up to a 3% relative standard
-# error, about (1 - L)/(L 0.0009) draws: 110,000 at L = 0.01, its cap of 500,000 from L = 2e-3
-# down. Raw levels below this floor are not refined; there the asymptotic p-value stands
+# qcfit.stats refines a Monte Carlo p-value near a raw level L up to a 2% relative standard
+# error (``REFINE_REL_SE``), about (1 - L)/(L 0.0004) draws: 247,500 at L = 0.01, its cap of
+# 1,000,000 (``MAX_DRAWS``) from L = 2.5e-3 down; it stops as soon as the estimate is more than
+# 3 standard errors from every level. Raw levels below this floor are not refined; there the asymptotic p-value stands
 # (Cochran's rule holds for those tables; common practice, no source).
 REFINE_FLOOR = 1e-3
 
