@@ -368,3 +368,15 @@ def test_read_counts_filters_by_local_start_date_and_line(plant_store, tmp_path)
             "count": 1,
         }
     ]
+
+
+def test_reading_many_shifts_from_a_store_without_tables_says_so(tmp_path):
+    """The count cells are read through the driver's cursor for speed, but the statement runs
+    through SQLAlchemy: a database error is still the plain-language store error."""
+    from qcfit.errors import SchemaError
+    from qcfit.store.engine import make_engine
+
+    engine = make_engine(f"sqlite:///{tmp_path / 'empty.sqlite'}")
+    with pytest.raises(SchemaError, match="qcfit init"), read_tx(engine) as conn:
+        shift_tables(conn, [1, 2], ["L1"], ["SCR"])
+    engine.dispose()

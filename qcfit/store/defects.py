@@ -546,14 +546,14 @@ def shift_table(
 def _raw_rows(conn: Connection, sql: str, ids: Sequence[int]) -> list[tuple]:
     """Plain tuples from the driver (``{ids}`` in ``sql`` becomes the placeholders of ``ids``):
     a backfill reads some 500 count cells a shift, where building SQLAlchemy rows cost more
-    than the query."""
+    than the query. The statement runs through SQLAlchemy (its errors become StoreError as
+    everywhere); only the rows are taken from the driver's cursor."""
     mark = "?" if conn.dialect.paramstyle in ("qmark", "numeric") else "%s"
-    cursor = conn.connection.cursor()
+    result = conn.exec_driver_sql(sql.format(ids=", ".join(mark for _ in ids)), tuple(ids))
     try:
-        cursor.execute(sql.format(ids=", ".join(mark for _ in ids)), tuple(ids))
-        return cursor.fetchall()
+        return result.cursor.fetchall()
     finally:
-        cursor.close()
+        result.close()
 
 
 def _positions(index: Mapping[Any, int], keys: Sequence[Any]) -> np.ndarray:
