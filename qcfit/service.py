@@ -475,9 +475,12 @@ class _Run:
             def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
                 ids = ensure_shifts(conn, shifts)
                 told = alarmlog.shifts_with_events(conn, list(ids.values()))
-                return ([_write_one(conn, config, s, found, seed, now, t0, extra, ids[s.id],
-                                    ids[s.id] not in told)
-                         for s, seed, found in computed], _mark_due(conn, to_mark, now))
+                done = []
+                for s, seed, found in computed:
+                    done.append(_write_one(conn, config, s, found, seed, now, t0, extra,
+                                           ids[s.id], ids[s.id] not in told))
+                    told.add(ids[s.id])  # a shift listed twice is not fresh the second time
+                return done, _mark_due(conn, to_mark, now)
 
             out, marked = run_write(self.engine, write)
         except Exception as exc:

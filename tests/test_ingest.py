@@ -15,7 +15,7 @@ from qcfit.errors import InputFileError, InvalidArgumentError
 from qcfit.ingest import load_counts_file, load_events_file
 from qcfit.store.defects import read_counts, shift_table, shift_tables
 from qcfit.store.engine import read_tx
-from qcfit.store.shifts import shift_row
+from qcfit.store.shifts import shift_row, shift_rows_of
 
 NOW = dt.datetime(2026, 12, 1, 12, tzinfo=dt.UTC)
 CHICAGO = ZoneInfo("America/Chicago")
@@ -380,3 +380,32 @@ def test_reading_many_shifts_from_a_store_without_tables_says_so(tmp_path):
     with pytest.raises(SchemaError, match="qcfit init"), read_tx(engine) as conn:
         shift_tables(conn, [1, 2], ["L1"], ["SCR"])
     engine.dispose()
+
+
+def test_an_error_while_fetching_many_shifts_is_a_store_error(plant_store):
+    """The driver's error raised after the statement started (here: an interrupt from a
+    progress handler) is translated like any other database error."""
+    from qcfit.errors import StoreError
+
+    path = plant_store.config_path.parent / "counts.csv"
+    days = [dt.date(2026, 1, 5) + dt.timedelta(days=d) for d in range(40)]
+    days = [d for d in days if d.weekday() != 6]  # the test plant makes nothing on Sundays
+    rows = "".join(f"{day.isoformat()}_{name},{line},{cat},3,4800\n" for day in days
+                   for name in ("A", "B") for line in ("L1", "L2") for cat in ("SCR", "DNT", "FL"))
+    path.write_text("shift,line,category,count,units_inspected\n" + rows, encoding="utf-8")
+    load_counts_file(plant_store.engine, plant_store.config, path,
+                     now=dt.datetime(2026, 3, 1, tzinfo=dt.UTC))
+    calls = {"n": 0}
+
+    def interrupt_once_running() -> int:
+        calls["n"] += 1
+        return 1 if calls["n"] > 10 else 0
+
+    with pytest.raises(StoreError, match="interrupted"), read_tx(plant_store.engine) as conn:
+        ids = [r.row_id for r in shift_rows_of(conn, [f"{d.isoformat()}_A" for d in days]).values()]
+        raw = conn.connection.driver_connection
+        raw.set_progress_handler(interrupt_once_running, 20)
+        try:
+            shift_tables(conn, ids, ["L1", "L2"], ["SCR", "DNT", "FL"])
+        finally:
+            raw.set_progress_handler(None, 0)

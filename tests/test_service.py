@@ -333,6 +333,27 @@ def test_a_run_collects_cycles_less_often_and_restores_the_thresholds(plant):
     assert gc.get_threshold() == before
 
 
+def test_a_shift_listed_twice_in_one_chunk_gets_one_event(tmp_path, plant_config_text):
+    """The chunk asks once which shifts already have alarm events; a shift written twice in
+    the same chunk (possible without the chart stage, which sorts and de-duplicates) must not
+    count as new the second time."""
+    text = plant_text(plant_config_text, min_effect_w=0.3, min_effect_v=0.3, mc_draws=2000)
+    config, engine = make_store(tmp_path, text + "\n[sequential]\nenabled = false\n")
+    shifts = shifts_from(ShiftCalendar.from_config(config), "2026-01-06_A", 3)
+    rng = np.random.default_rng(6)
+    for s in shifts:
+        load_counts(engine, s, {"L1": flash_jump(400, rng)} | {ln: healthy(400, rng) for ln in LINES[1:]})
+    done = service.evaluate_shifts(engine, config, [shifts[0], shifts[1], shifts[1], shifts[2]],
+                                   now=after(shifts[-1]))
+    assert all(s.ok for s in done) and any(s.opened for s in done)
+    with read_tx(engine) as conn:
+        events = conn.execute(select(alarm_event.c.alarm_id, alarm_event.c.action,
+                                     alarm_event.c.shift_id)).all()
+    assert events and len(events) == len(set(events))
+    assert sum(1 for _, action, _ in events if action == "update") == 2  # shifts B and C
+    engine.dispose()
+
+
 def test_backfill_in_chunks_equals_shift_by_shift(tmp_path, plant_config_text):
     text = plant_text(plant_config_text, min_effect_w=0.3, min_effect_v=0.3, mc_draws=2000)
     results = []

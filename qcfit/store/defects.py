@@ -549,9 +549,13 @@ def _raw_rows(conn: Connection, sql: str, ids: Sequence[int]) -> list[tuple]:
     than the query. The statement runs through SQLAlchemy (its errors become StoreError as
     everywhere); only the rows are taken from the driver's cursor."""
     mark = "?" if conn.dialect.paramstyle in ("qmark", "numeric") else "%s"
-    result = conn.exec_driver_sql(sql.format(ids=", ".join(mark for _ in ids)), tuple(ids))
+    statement, params = sql.format(ids=", ".join(mark for _ in ids)), tuple(ids)
+    result = conn.exec_driver_sql(statement, params)
+    dbapi_error = conn.dialect.loaded_dbapi.Error
     try:
         return result.cursor.fetchall()
+    except dbapi_error as exc:  # as SQLAlchemy would raise it, so callers see a StoreError
+        raise sa_exc.DBAPIError.instance(statement, params, exc, dbapi_error) from exc
     finally:
         result.close()
 
