@@ -662,6 +662,7 @@ class ChartStage:
         self._fresh: dict[int, tuple[LinePlan, SequentialState]] = {}  # id(plan) -> init state
         self._totals: dict[int, dict[str, int]] = {}  # shift row id -> line -> defects
         self._chains: dict[str, list[tuple[dt.datetime, str]]] = {}  # line -> stored chain
+        self._written: dict[str, tuple[dt.datetime, tuple[str, ...]]] = {}  # see _settle
         self.calibration_seconds = 0.0
         self.calibrations = 0
 
@@ -678,6 +679,7 @@ class ChartStage:
         from qcfit.store import charts as sql
         from qcfit.store.engine import read_tx, to_utc_naive
 
+        self._settle()
         shift = table.shift
         lines = [ln for ln in table.lines if baselines.get(ln) is not None]
         if not lines:
@@ -704,7 +706,7 @@ class ChartStage:
             groups.setdefault(_shape_key(w.plan), []).append(w)
         for group in groups.values():
             self._advance(shift, table, group)
-        pending = self._pending.setdefault(shift.id, {})
+        pending = self._pending[shift.id] = {}  # a shift computed again starts afresh
         for w in ready:
             if w.done is not None:
                 w.done.reset_note = marks.get(w.line)
@@ -936,18 +938,29 @@ class ChartStage:
         from qcfit.store.engine import to_utc_naive
 
         start = to_utc_naive(shift.start)
-        pending = self._pending.pop(shift.id, {})
+        pending = self._pending.get(shift.id, {})
         self._check_unchanged(conn, shift, start, pending)
         sql.write_states_many(conn, shift_row_id,
                               {line: encoded_rows(d.block, d.row) for line, d in pending.items()},
                               probe_chart=CHART_MEWMA)
-        for line in pending:  # older values of the line are in the store now
-            for d in reversed(self._done.get(line, ())):
-                if d.start >= start:
-                    continue
-                if d.block is None:
-                    break
-                d.block = None
+        # forgotten only at the next computation: the transaction may still be rolled back
+        # and this write run again (a retry of the whole chunk)
+        self._written[shift.id] = (start, tuple(pending))
+
+    def _settle(self) -> None:
+        """Forget what earlier writes stored: their pending rows, and the in-memory values of
+        those lines older than the shift written (they are in the store now). Called before a
+        computation, when the write transactions of the shifts computed before it are over."""
+        for shift_id, (start, lines) in self._written.items():
+            self._pending.pop(shift_id, None)
+            for line in lines:
+                for d in reversed(self._done.get(line, ())):
+                    if d.start >= start:
+                        continue
+                    if d.block is None:
+                        break
+                    d.block = None
+        self._written.clear()
 
     def _check_unchanged(self, conn: Any, shift: ShiftInstance, start: dt.datetime,
                          pending: Mapping[str, _Done]) -> None:

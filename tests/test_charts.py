@@ -477,3 +477,41 @@ def test_rows_written_as_text_keep_a_reset_mark_as_dict_rows_do(tmp_path, plant_
     marked = jsontext.dumps(state | {chart_sql.RESET_KEY: "ack 7"})
     assert got == {"L1MEWMA": marked, "L1bank": marked, "L2MEWMA": jsontext.dumps(state)}
     engine.dispose()
+
+
+def test_a_chunk_write_retried_after_a_rollback_stores_every_chart_row(tmp_path, plant_config_text):
+    """``run_write`` runs a chunk's write again when the store stayed locked (on PostgreSQL a
+    lock timeout can come mid-transaction): the stage's second ``write`` of each shift must
+    store the same rows as a first one that committed."""
+    from qcfit.errors import StoreError
+    from qcfit.store.engine import run_write
+
+    stored = []
+    for name, fail_once in (("plain", False), ("retried", True)):
+        (tmp_path / name).mkdir()
+        _, config, engine, cal = make_plant(tmp_path / name, plant_config_text, FAST)
+        work = shifts(cal, 3)
+        load(engine, work, drift_counts(start=1))
+        tables = service._read_tables(engine, config, work)
+        baselines = dict.fromkeys(("L1", "L2", "L3", "L4"), ref())
+        stage = charts.ChartStage(engine, config, now=after(work))
+        for table in tables:
+            stage(table, baselines)
+        attempts = []
+
+        def write_all(conn, fail_once=fail_once, work=work, stage=stage, attempts=attempts):
+            attempts.append(1)
+            ids = ensure_shifts(conn, work)
+            for s in work:
+                stage.write(conn, s, ids[s.id])
+            if fail_once and len(attempts) == 1:
+                err = StoreError("database is locked (injected after the writes)")
+                err.locked = True
+                raise err
+
+        run_write(engine, write_all)
+        assert len(attempts) == (2 if fail_once else 1)
+        stored.append(chart_rows(engine))
+        engine.dispose()
+    assert stored[0] and stored[0] == stored[1]
+    assert {r[2] for r in stored[1]} == {1, 2, 3}  # every shift has its rows
