@@ -11,7 +11,6 @@ re-evaluating marks the old one superseded in the same transaction that inserts 
 from __future__ import annotations
 
 import datetime as dt
-import operator
 from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
@@ -63,18 +62,11 @@ def insert_evaluation(conn: Connection, values: Mapping[str, Any]) -> int:
 
 _JSON_COLUMNS = frozenset(c.name for c in finding.columns if isinstance(c.type, JSON))
 _INSERT_COLUMNS = ("evaluation_id", *FINDING_COLUMNS)
-_PICK = operator.itemgetter(*FINDING_COLUMNS)
 _JSON_AT = tuple(i for i, c in enumerate(_INSERT_COLUMNS) if c in _JSON_COLUMNS)
 
 
 def _placeholder(conn: Connection) -> str:
     return "?" if conn.dialect.paramstyle in ("qmark", "numeric") else "%s"
-
-
-def insert_findings(conn: Connection, evaluation_id: int, rows: Iterable[Mapping[str, Any]]) -> int:
-    """Insert finding rows (column -> value; every column of :data:`FINDING_COLUMNS`, KeyError
-    otherwise) in one executemany; returns how many."""
-    return insert_finding_values(conn, evaluation_id, map(_PICK, rows))
 
 
 def insert_finding_values(conn: Connection, evaluation_id: int,

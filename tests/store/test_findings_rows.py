@@ -52,3 +52,9 @@ def test_stored_findings_read_back_as_written(store_url, tmp_path, plant_config_
     # the between-lines statistic read back is the float written (no rounding on the way)
     between = next(f for f in stored if f["kind"] == "between-lines")
     assert _close(between["statistic"], float(between["statistic"])) and between["dof"] == 15
+
+
+def test_finding_values_follow_the_finding_table_columns() -> None:
+    from qcfit.store.evaluations import FINDING_COLUMNS
+
+    assert service._VALUE_ORDER == FINDING_COLUMNS
