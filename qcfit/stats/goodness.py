@@ -69,6 +69,9 @@ def _model(n: int, p: np.ndarray, statistic: str) -> pvalues.Model:
     def sample(rng: np.random.Generator, size: int) -> np.ndarray:
         return rank(draw.draw(rng, np.full(size, n)))
 
+    # several chunks at once: drawn in one pass, ranked chunk by chunk (the same numbers)
+    sample.many = lambda rngs, size: [rank(x) for x in draw.draw_many(rngs, n, size)]
+
     def enumerate_() -> tuple[np.ndarray, np.ndarray]:
         x = compositions(n, k)
         logp = gammaln(n + 1) - gammaln(x + 1).sum(axis=1) + xlogy(x, ps).sum(axis=1)

@@ -106,14 +106,28 @@ class MultinomialSampler:
         if self.tables is None:
             return rng.multinomial(n, self.p).astype(float)
         flat = n.ravel()
-        out = np.empty((flat.size, k))
+        return self._from_uniforms(rng.random((k - 1, flat.size)), flat).reshape(n.shape + (k,))
+
+    def draw_many(self, rngs: list[np.random.Generator], n: int, size: int
+                  ) -> list[np.ndarray]:
+        """``[draw(rng, np.full(size, n)) for rng in rngs]``, the same numbers, inverted in one
+        pass over all the draws (the per-call cost of the table look-ups is paid once)."""
+        k = self.p.size
+        if self.tables is None or len(rngs) < 2:
+            return [self.draw(rng, np.full(size, n)) for rng in rngs]
+        u = np.concatenate([rng.random((k - 1, size)) for rng in rngs], axis=1)
+        out = self._from_uniforms(u, np.full(u.shape[1], n, dtype=np.int64))
+        return np.split(out, len(rngs))
+
+    def _from_uniforms(self, u: np.ndarray, flat: np.ndarray) -> np.ndarray:
+        """Counts (len(flat), k) from the uniforms ``u`` (k - 1, len(flat)), by inversion."""
+        out = np.empty((flat.size, self.p.size))
         left = flat.copy()
-        u = rng.random((k - 1, flat.size))
         for j, (cdf, guide) in enumerate(self.tables):
             out[:, j] = xj = self._invert(cdf, guide, left, u[j])
             left -= xj
-        out[:, k - 1] = left
-        return out.reshape(n.shape + (k,))
+        out[:, -1] = left
+        return out
 
     def _invert(self, cdf: np.ndarray, guide: np.ndarray, m: np.ndarray, u: np.ndarray
                 ) -> np.ndarray:
@@ -220,10 +234,14 @@ class ReferenceSample:
     _sorted_size: int = -1
 
     def ensure(self, draws: int) -> None:
-        while len(self.chunks) * CHUNK < draws:
-            j = len(self.chunks)
-            rng = np.random.default_rng(np.random.SeedSequence([self.root, *self.words, j]))
-            self.chunks.append(np.asarray(self.sampler(rng, CHUNK), dtype=float))
+        first, last = len(self.chunks), -(-int(draws) // CHUNK)
+        if last <= first:
+            return
+        rngs = [np.random.default_rng(np.random.SeedSequence([self.root, *self.words, j]))
+                for j in range(first, last)]
+        many = getattr(self.sampler, "many", None)  # same chunks, drawn in one pass
+        got = many(rngs, CHUNK) if many is not None else [self.sampler(r, CHUNK) for r in rngs]
+        self.chunks += [np.asarray(c, dtype=float) for c in got]
 
     def count_ge(self, t: np.ndarray, draws: int) -> np.ndarray:
         self.ensure(draws)

@@ -324,3 +324,21 @@ def test_asymptotic_pvalue_equals_scipy_chi2_sf_bit_for_bit():
         ref = stats.chi2.sf(t, np.where(dof >= 1, dof, np.nan))
     assert np.array_equal(asymptotic_pvalue(t, dof), ref, equal_nan=True)
     assert asymptotic_pvalue(np.inf, 2.0) == 0.0  # outside the fast path: scipy's answer
+
+
+@given(st.integers(1, 60), st.integers(2, 6), st.integers(0, 2**32 - 1))
+@settings(max_examples=25, deadline=None)
+def test_reference_chunks_drawn_together_equal_chunks_drawn_one_by_one(n, k, seed):
+    """A Monte Carlo reference sample may draw many seeded chunks in one pass; every chunk
+    must hold exactly the numbers it holds when drawn alone (the p-values depend on it)."""
+    from qcfit.stats import goodness, pvalues
+
+    p = np.linspace(1.0, 2.0, k) / np.linspace(1.0, 2.0, k).sum()
+    model = goodness._model(n, p, "pearson")
+    together = pvalues.ReferenceSample(model.sampler, seed, model.words)
+    together.ensure(4 * pvalues.CHUNK)
+    alone = pvalues.ReferenceSample(lambda rng, size: model.sampler(rng, size), seed, model.words)
+    alone.ensure(4 * pvalues.CHUNK)  # no `many`: chunk by chunk
+    assert len(together.chunks) == len(alone.chunks) == 4
+    for a, b in zip(together.chunks, alone.chunks, strict=True):
+        assert np.array_equal(a, b)
