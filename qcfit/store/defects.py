@@ -43,7 +43,7 @@ from sqlalchemy import exc as sa_exc
 from sqlalchemy.engine import make_url
 
 from qcfit.errors import InputFileError, StoreError
-from qcfit.store.engine import from_utc_naive, to_utc_naive
+from qcfit.store.engine import driver_placeholder, from_utc_naive, to_utc_naive
 from qcfit.store.schema import (
     count_correction,
     defect_count,
@@ -548,7 +548,7 @@ def _raw_rows(conn: Connection, sql: str, ids: Sequence[int]) -> list[tuple]:
     a backfill reads some 500 count cells a shift, where building SQLAlchemy rows cost more
     than the query. The statement runs through SQLAlchemy (its errors become StoreError as
     everywhere); only the rows are taken from the driver's cursor."""
-    mark = "?" if conn.dialect.paramstyle in ("qmark", "numeric") else "%s"
+    mark = driver_placeholder(conn)
     statement, params = sql.format(ids=", ".join(mark for _ in ids)), tuple(ids)
     result = conn.exec_driver_sql(statement, params)
     dbapi_error = conn.dialect.loaded_dbapi.Error

@@ -220,6 +220,12 @@ def store_error(engine: Engine, exc: BaseException, *, reading: bool = False) ->
     return StoreError(f"{where}: {detail}")
 
 
+def driver_placeholder(conn: Connection) -> str:
+    """The driver's parameter mark, for SQL run with ``exec_driver_sql`` (the hot paths of a
+    backfill): ``?`` for sqlite3, ``%s`` for psycopg."""
+    return "?" if conn.dialect.paramstyle == "qmark" else "%s"
+
+
 def to_utc_naive(ts: dt.datetime) -> dt.datetime:
     """Aware datetime -> naive UTC, as the store keeps ``*_utc`` columns; naive is refused."""
     if not isinstance(ts, dt.datetime):

@@ -18,6 +18,7 @@ from sqlalchemy import JSON, and_, bindparam, func, insert, select, update
 from sqlalchemy.engine import Connection
 
 from qcfit.store import jsontext
+from qcfit.store.engine import driver_placeholder
 from qcfit.store.schema import evaluation, finding, shift
 
 FINDING_COLUMNS = tuple(c.name for c in finding.columns if c.name not in ("id", "evaluation_id"))
@@ -65,10 +66,6 @@ _INSERT_COLUMNS = ("evaluation_id", *FINDING_COLUMNS)
 _JSON_AT = tuple(i for i, c in enumerate(_INSERT_COLUMNS) if c in _JSON_COLUMNS)
 
 
-def _placeholder(conn: Connection) -> str:
-    return "?" if conn.dialect.paramstyle in ("qmark", "numeric") else "%s"
-
-
 def insert_finding_values(conn: Connection, evaluation_id: int,
                           rows: Iterable[Sequence[Any]]) -> int:
     """Insert finding rows given as values in the order of :data:`FINDING_COLUMNS` (the JSON
@@ -86,7 +83,7 @@ def insert_finding_values(conn: Connection, evaluation_id: int,
             values[j] = dumps(values[j])  # None -> 'null', as the JSON type writes it
         batch.append(tuple(values))
     if batch:
-        mark, quote = _placeholder(conn), conn.dialect.identifier_preparer.quote
+        mark, quote = driver_placeholder(conn), conn.dialect.identifier_preparer.quote
         conn.exec_driver_sql(
             f"INSERT INTO {quote(finding.name)} ({', '.join(map(quote, _INSERT_COLUMNS))}) "
             f"VALUES ({', '.join(mark for _ in _INSERT_COLUMNS)})", batch)
