@@ -298,3 +298,5 @@ def test_with_values_is_a_replace():
     assert ev.with_values(f, severity="alarm", adjusted_pvalue=0.5) == dataclasses.replace(
         f, severity="alarm", adjusted_pvalue=0.5)
     assert ev.with_values(f) == f and ev.with_values(f) is not f
+    with pytest.raises(TypeError, match="no field colour"):
+        ev.with_values(f, colour="red")
