@@ -184,6 +184,15 @@ def judge(findings: Sequence[Finding], method: str) -> tuple[Finding, ...]:
     return tuple(out)
 
 
+def for_decisions(judged: Iterable[Finding]) -> tuple[Finding, ...]:
+    """Judged findings as :func:`decide` needs them: in full where one crosses or reports a
+    fault (its figures go into the alarm), otherwise only its kind, line and verdict (which
+    alarm it belongs to, and whether that line and kind was in control). Cheap to send between
+    processes; ``decide(..., judged=True)`` gives the same decisions as with the full ones."""
+    return tuple(f if crossed(f) or f.verdict == ev.FAULT else Finding(f.kind, f.line, f.verdict, "")
+                 for f in judged)
+
+
 def _judged(f: Finding, adjusted_p: float) -> Finding:
     sev = severity_of(f, adjusted_p)
     verdict = sev or (ev.TOO_LITTLE_DATA if f.verdict == ev.TOO_LITTLE_DATA else IN_CONTROL)
@@ -324,8 +333,11 @@ def decide(
     active: Sequence[ActiveAlarm] = (),
     history: Mapping[tuple[str | None, str], Sequence[bool]] | None = None,
     names: Mapping[str, str] | None = None,
+    judged: bool = False,
 ) -> PolicyResult:
-    """Judge one shift's findings and decide what happens to each alarm.
+    """Judge one shift's findings and decide what happens to each alarm (``judged``: the
+    findings went through :func:`judge` with the same thresholds already, or through
+    :func:`for_decisions` after it).
 
     ``active``: alarms open or acknowledged now, plus any alarm (in any state) that this shift
     raised or that covers it (so a re-evaluation updates or withdraws it instead of raising
@@ -333,15 +345,17 @@ def decide(
     shift crossed, oldest first (only the last m - 1 are used). ``names``: display names of
     categories for the words.
     """
-    judged = judge(findings, thresholds.multiple_testing)
+    if not judged:
+        findings = judge(findings, thresholds.multiple_testing)
+    judged_findings = tuple(findings)
     names = names or {}
     history = history or {}
-    groups = _group(judged)
+    groups = _group(judged_findings)
     by_key: dict[tuple[str | None, str], list[ActiveAlarm]] = {}
     for a in active:
         by_key.setdefault((a.line, a.kind), []).append(a)
     decisions: list[AlarmDecision] = []
-    vs_rest = sorted((f for f in judged if f.kind == ev.KIND_VS_REST and crossed(f)),
+    vs_rest = sorted((f for f in judged_findings if f.kind == ev.KIND_VS_REST and crossed(f)),
                      key=lambda f: f.adjusted_pvalue or 1.0)
     for key in sorted(set(groups) | set(by_key), key=lambda k: (k[1], k[0] or "")):
         found, alarms = groups.get(key, []), by_key.get(key, [])
@@ -349,7 +363,7 @@ def decide(
             continue  # no alarm to touch and nothing crossed: _decide_key would decide nothing
         decisions += _decide_key(key, found, alarms, thresholds, shift_id,
                                  history.get(key, ()), names, vs_rest)
-    return PolicyResult(judged, tuple(decisions))
+    return PolicyResult(judged_findings, tuple(decisions))
 
 
 def _group(findings: Iterable[Finding]) -> dict[tuple[str | None, str], list[Finding]]:

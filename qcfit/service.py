@@ -46,6 +46,7 @@ import math
 import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Mapping, Sequence
+from concurrent.futures.process import BrokenProcessPool
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
@@ -53,7 +54,7 @@ from typing import Any
 import numpy as np
 
 import qcfit
-from qcfit import alarmlog, charts, policy
+from qcfit import alarmlog, backfill, charts, policy
 from qcfit import evaluate as ev
 from qcfit.baselines import baseline_in_force
 from qcfit.calendar import ShiftCalendar
@@ -273,26 +274,74 @@ def _write_one(conn: Any, config: Any, shift: ShiftInstance, findings: Sequence[
     """Decide and write one shift's evaluation inside the caller's write transaction
     (``row_id``: the shift's row, when the caller has made sure of it; ``fresh``: no alarm
     has a raise or update event of this shift yet)."""
+    judged = policy.judge(findings, config.thresholds.multiple_testing)
+    return _write_judged(conn, config, shift, judged, [finding_values(f) for f in judged],
+                         Counter(f.verdict for f in judged), seed, now, t0, extra, row_id, fresh)
+
+
+def _write_judged(conn: Any, config: Any, shift: ShiftInstance, judged: Sequence[ev.Finding],
+                  rows: Sequence[Sequence[Any]], verdicts: Counter[str], seed: int,
+                  now: dt.datetime, t0: float, extra: Any, row_id: int | None, fresh: bool,
+                  json_text: bool = False) -> EvaluationSummary:
+    """:func:`_write_one` after :func:`policy.judge`: ``judged`` as :func:`policy.decide`
+    needs them (see :func:`policy.for_decisions`), ``rows`` the finding rows of all of them
+    (``json_text``: their JSON columns written as text already), ``verdicts`` their counts."""
     if row_id is None:
         row_id = ensure_shifts(conn, [shift])[shift.id]
     active, alarm_rows = alarmlog.active_alarms_with_rows(conn, row_id)
-    decided = policy.decide(findings, config.thresholds, shift_id=shift.id, active=active,
-                            history=_history(conn, config, shift), names=dict(config.categories))
+    decided = policy.decide(judged, config.thresholds, shift_id=shift.id, active=active,
+                            history=_history(conn, config, shift), names=dict(config.categories),
+                            judged=True)
     old = esql.supersede_current(conn, row_id, to_utc_naive(now))
     eval_id = esql.insert_evaluation(
         conn, _evaluation_row(config, row_id, OK, seed, now, t0, None, True))
-    esql.insert_finding_values(conn, eval_id, [finding_values(f) for f in decided.findings])
+    esql.insert_finding_values(conn, eval_id, rows, json_text=json_text)
     applied = alarmlog.apply_decisions(conn, decided.decisions, shift_row_id=row_id,
                                        shift_start_utc=to_utc_naive(shift.start), now=now,
                                        rows=alarm_rows, fresh=fresh)
     if hasattr(extra, "write"):  # the sequential stage keeps its chart values in this transaction
         extra.write(conn, shift, row_id)
-    verdicts = Counter(f.verdict for f in decided.findings)
     return EvaluationSummary(
         shift_id=shift.id, evaluation_id=eval_id, status=OK, seed=seed, superseded_id=old,
-        findings=len(decided.findings), verdicts=tuple(sorted(verdicts.items())),
+        findings=len(rows), verdicts=tuple(sorted(verdicts.items())),
         opened=applied.opened, updated=applied.updated, cleared=applied.cleared,
         seconds=time.perf_counter() - t0)
+
+
+@dataclass(frozen=True, slots=True)
+class PreparedShift:
+    """One shift's per-shift tests, judged and made into finding rows (JSON columns as text)
+    by :func:`prepare_chunk`, in the order a one-process run writes them; ``for_decisions``
+    as :func:`policy.for_decisions` gives them; ``verdicts`` counted."""
+
+    rows: tuple[tuple[Any, ...], ...]
+    for_decisions: tuple[ev.Finding, ...]
+    verdicts: tuple[tuple[str, int], ...]
+
+
+@dataclass(frozen=True, slots=True)
+class PreparedChunk:
+    """:func:`prepare_chunk`'s answer: the count tables read and each shift's tests."""
+
+    tables: tuple[CountTable, ...]
+    shifts: tuple[PreparedShift, ...]
+
+
+def prepare_chunk(engine: Any, config: Any, versions: Mapping[str, int],
+                  shifts: Sequence[ShiftInstance], memo: BaselineMemo) -> PreparedChunk:
+    """Read and test a chunk of shifts, everything but the chart stage and the alarm log
+    (run in a helper process, see :mod:`qcfit.backfill`; no write)."""
+    tables = _read_tables(engine, config, shifts)
+    seeds = [shift_seed(config.thresholds.seed, s.id) for s in shifts]
+    method = config.thresholds.multiple_testing
+    out = []
+    for found in _compute_many(config, versions, tables, seeds, None, memo):
+        judged = policy.judge(found, method)
+        out.append(PreparedShift(
+            rows=tuple(esql.json_text_row(finding_values(f)) for f in judged),
+            for_decisions=policy.for_decisions(judged),
+            verdicts=tuple(Counter(f.verdict for f in judged).items())))
+    return PreparedChunk(tuple(tables), tuple(out))
 
 
 def _error_text(exc: BaseException) -> str:
@@ -346,6 +395,19 @@ def _compute_many(config: Any, versions: Mapping[str, int], tables: Sequence[Cou
                                  extras=more)
     return [tuple(_with_problems(r, problems))
             for r, (_, problems) in zip(results, found, strict=True)]
+
+
+def _chart_findings(config: Any, versions: Mapping[str, int], tables: Sequence[CountTable],
+                    extra: ExtraFindings | None, memo: BaselineMemo) -> list[tuple[ev.Finding, ...]]:
+    """The chart stage's findings of each table, in order, as :func:`_compute_many` adds them
+    (the part of a shift's findings a helper process does not compute)."""
+    if extra is None:
+        return [() for _ in tables]
+    out = []
+    for t in tables:
+        found, problems = _baselines(config, versions, t, memo)
+        out.append(tuple(_with_problems(tuple(extra(t, found)), problems)))
+    return out
 
 
 def _log_done(summary: EvaluationSummary) -> None:
@@ -489,6 +551,48 @@ class _Run:
         return out
 
 
+    def chunk_prepared(self, shifts: Sequence[ShiftInstance], rest: Sequence[ShiftInstance],
+                       prepared: PreparedChunk) -> list[EvaluationSummary]:
+        """:meth:`chunk` with the per-shift tests done by a helper process (``prepared``):
+        the chart stage, the decisions and the writes here, in the same order and with the
+        same results. Any trouble, and the chunk is evaluated shift by shift instead."""
+        t0 = time.perf_counter()
+        config, extra, now = self.config, self.extra, self.run_at
+        to_mark = rest if self.marked is None else ()
+        method = config.thresholds.multiple_testing
+        try:
+            if [t.shift.id for t in prepared.tables] != [s.id for s in shifts]:
+                raise RuntimeError("the helper process answered for other shifts")
+            more = _chart_findings(config, self.versions, prepared.tables, extra, self.memo)
+
+            def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
+                ids = ensure_shifts(conn, shifts)
+                told = alarmlog.shifts_with_events(conn, list(ids.values()))
+                done = []
+                for s, p, charted in zip(shifts, prepared.shifts, more, strict=True):
+                    judged = policy.judge(charted, method)
+                    verdicts = Counter(dict(p.verdicts))
+                    verdicts.update(f.verdict for f in judged)
+                    rows = [*p.rows, *(esql.json_text_row(finding_values(f)) for f in judged)]
+                    done.append(_write_judged(
+                        conn, config, s, [*p.for_decisions, *judged], rows, verdicts,
+                        shift_seed(config.thresholds.seed, s.id), now, t0, extra, ids[s.id],
+                        ids[s.id] not in told, json_text=True))
+                    told.add(ids[s.id])
+                return done, _mark_due(conn, to_mark, now)
+
+            out, marked = run_write(self.engine, write)
+        except Exception as exc:
+            log.warning("writing %d shifts tested by a helper failed (%s); going shift by shift",
+                        len(shifts), _error_text(exc))
+            return [self.one(s, [*shifts[i + 1:], *rest]) for i, s in enumerate(shifts)]
+        if self.marked is None:
+            self.marked = marked
+        for summary in out:
+            _log_done(summary)
+        return out
+
+
 def _labelled(summary: EvaluationSummary, run: _Run, asked: set[str]) -> EvaluationSummary:
     old = (run.marked or {}).get(summary.shift_id)
     forward = summary.shift_id not in asked
@@ -508,9 +612,14 @@ def evaluate_shifts(
     progress: Progress | None = None,
     extra: ExtraFindings | None = None,
     chunk: int = CHUNK,
+    helpers: int | None = None,
 ) -> list[EvaluationSummary]:
     """Evaluate ``shifts`` in order (re-evaluating any already evaluated), ``chunk`` shifts per
     write transaction.
+
+    A long run has later chunks read and tested by ``helpers`` helper processes while this
+    process writes (:mod:`qcfit.backfill`; default :func:`backfill.helpers_for`, 0 for none);
+    the results are the same.
 
     With sequential charts, every later shift that has chart rows is re-evaluated too, in
     order (``forward`` on its summary). A run of more than one write transaction marks the
@@ -529,16 +638,85 @@ def evaluate_shifts(
     versions = sync_versions(engine, config, now=now, os_user=os_user)
     run = _Run(engine, config, now, versions, os_user, extra, own_stage and extra is not None)
     size = max(1, chunk)
+    parts = [shifts[start:start + size] for start in range(0, len(shifts), size)]
     out: list[EvaluationSummary] = []
-    with _few_collections(len(shifts) > 1):
-        for start in range(0, len(shifts), size):
-            part, rest = shifts[start:start + size], shifts[start + size:]
-            done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
+    with _few_collections(len(shifts) > 1), _Ahead(run, parts, helpers) as ahead:
+        for k, part in enumerate(parts):
+            rest = shifts[(k + 1) * size:]
+            prepared = ahead.take(k)
+            if prepared is not None:
+                done = run.chunk_prepared(part, rest, prepared)
+            else:
+                done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
             out += [_labelled(s, run, asked) for s in done]
             if progress is not None:
                 for i in range(len(out) - len(part), len(out)):
                     progress(i + 1, len(shifts), out[i])
     return out
+
+
+class _Ahead:
+    """The chunks of a run that helper processes test ahead of the writing (see
+    :mod:`qcfit.backfill`): the first chunk stays here while they start, every later one is
+    handed out a few chunks ahead. A chunk whose helper failed is tested here."""
+
+    def __init__(self, run: _Run, parts: Sequence[Sequence[ShiftInstance]],
+                 helpers: int | None) -> None:
+        self.run, self.parts = run, parts
+        self.helpers = backfill.helpers_for(len(parts)) if helpers is None else max(0, helpers)
+        self.pool: backfill.HelperPool | None = None
+        self.pending: dict[int, Any] = {}
+        self.next = 1
+
+    def __enter__(self) -> _Ahead:
+        if self.helpers and len(self.parts) > 1:
+            try:
+                self.pool = backfill.HelperPool(self.run.engine, self.run.config,
+                                                self.run.versions, self.helpers,
+                                                gc_threshold=RUN_GC_THRESHOLD)
+            except Exception as exc:  # no helpers: the run goes on in this process
+                log.warning("could not start helper processes (%s)", _error_text(exc))
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        if self.pool is not None:
+            self.pool.close()
+
+    def take(self, k: int) -> PreparedChunk | None:
+        """Chunk ``k`` tested by a helper, or None when this process is to test it."""
+        self._hand_out(k)
+        future = self.pending.pop(k, None)
+        if future is None:
+            return None
+        try:
+            return future.result()
+        except Exception as exc:
+            log.warning("a helper process failed on %d shifts (%s); testing them here",
+                        len(self.parts[k]), _error_text(exc))
+            if isinstance(exc, BrokenProcessPool):
+                self._stop()
+            return None
+
+    def _hand_out(self, k: int) -> None:
+        if self.pool is None:
+            return
+        ahead = 2 * self.helpers  # every helper has its next chunk waiting
+        while self.next < len(self.parts) and self.next <= k + ahead:
+            try:
+                self.pending[self.next] = self.pool.submit(prepare_chunk, self.parts[self.next])
+            except Exception as exc:  # the pool is broken or shut down
+                log.warning("helper processes stopped (%s)", _error_text(exc))
+                self._stop()
+                return
+            self.next += 1
+
+    def _stop(self) -> None:
+        if self.pool is not None:
+            self.pool.close()
+        self.pool = None
+        for future in self.pending.values():
+            future.cancel()
+        self.pending.clear()
 
 
 #: objects allocated between two youngest-generation collections of the cycle collector during

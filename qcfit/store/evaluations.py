@@ -66,22 +66,32 @@ _INSERT_COLUMNS = ("evaluation_id", *FINDING_COLUMNS)
 _JSON_AT = tuple(i for i, c in enumerate(_INSERT_COLUMNS) if c in _JSON_COLUMNS)
 
 
+_JSON_IN_ROW = tuple(j - 1 for j in _JSON_AT)
+
+
+def json_text_row(values: Sequence[Any]) -> tuple[Any, ...]:
+    """A finding row's values (order of :data:`FINDING_COLUMNS`) with its JSON columns as the
+    text the JSON column type would write (None -> 'null'), by :mod:`qcfit.store.jsontext`."""
+    out = list(values)
+    for j in _JSON_IN_ROW:
+        out[j] = jsontext.dumps(out[j])
+    return tuple(out)
+
+
 def insert_finding_values(conn: Connection, evaluation_id: int,
-                          rows: Iterable[Sequence[Any]]) -> int:
+                          rows: Iterable[Sequence[Any]], *, json_text: bool = False) -> int:
     """Insert finding rows given as values in the order of :data:`FINDING_COLUMNS` (the JSON
-    columns as Python values) in one executemany; returns how many.
+    columns as Python values, or with ``json_text`` as text :func:`json_text_row` made) in one
+    executemany; returns how many.
 
     The driver's own executemany with the JSON columns written by :mod:`qcfit.store.jsontext`
     (the text the JSON column type would write): a backfill inserts some 150 rows a shift,
     where SQLAlchemy's per-row parameter processing cost more than the insert itself.
     """
-    dumps = jsontext.dumps
-    batch = []
-    for r in rows:
-        values = [evaluation_id, *r]
-        for j in _JSON_AT:
-            values[j] = dumps(values[j])  # None -> 'null', as the JSON type writes it
-        batch.append(tuple(values))
+    if json_text:
+        batch = [(evaluation_id, *r) for r in rows]
+    else:
+        batch = [(evaluation_id, *json_text_row(r)) for r in rows]
     if batch:
         mark, quote = driver_placeholder(conn), conn.dialect.identifier_preparer.quote
         conn.exec_driver_sql(
