@@ -24,6 +24,7 @@ import os
 import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 log = logging.getLogger(__name__)
@@ -66,9 +67,14 @@ class HelperPool:
     def submit(self, work: Callable[..., Any], shifts: Sequence[Any]) -> cf.Future[Any]:
         return self._pool.submit(_run_in_helper, work, list(shifts))
 
-    def close(self) -> None:
-        """Stop the helpers: queued chunks are dropped, a chunk being tested is abandoned."""
-        self._pool.shutdown(wait=False, cancel_futures=True)
+    def started(self) -> cf.Future[Any]:
+        """Done once a helper has started (its answer: True)."""
+        return self._pool.submit(_started)
+
+    def close(self, wait: bool = False) -> None:
+        """Stop the helpers: queued chunks are dropped; ``wait``: until they have ended (else a
+        chunk being tested is abandoned and they end by themselves)."""
+        self._pool.shutdown(wait=wait, cancel_futures=True)
 
 
 def _start_helper(url: str, busy_timeout_s: float, config: Any, versions: dict[str, int],
@@ -96,6 +102,125 @@ def _end_with_parent(parent: int) -> None:
             os._exit(1)
 
 
+def _started() -> bool:
+    return True
+
+
 def _run_in_helper(work: Callable[..., Any], shifts: list[Any]) -> Any:
     h = _HELPER
     return work(h["engine"], h["config"], h["versions"], shifts, h["memo"])
+
+
+def helper_share(own_s: float, written_s: float, helper_s: float, helpers: int) -> float:
+    """The share of a run's chunks to hand to helpers so that the run's process and the
+    helpers finish together, from CPU seconds per shift: ``own_s`` when the run's process
+    tests and writes a chunk, ``written_s`` when it only writes a helper's answer,
+    ``helper_s`` a helper's testing. With share f, the run's process spends
+    (1 - f) own + f written and the ``helpers`` helpers f helper / helpers per shift; equal at
+    f = own / (own - written + helper / helpers), at most 1 (the chart stage and the writes
+    can keep the run's process busier than the helpers, then they get every chunk)."""
+    denominator = own_s - written_s + helper_s / max(1, helpers)
+    if denominator <= 0:
+        return 1.0
+    return min(1.0, max(0.0, own_s / denominator))
+
+
+class Lookahead:
+    """The chunks of a run that helpers test ahead of the writing: the run's process tests
+    the chunks itself until a helper has started (a second or so); later ones are handed out
+    up to two per helper ahead, each to a helper or kept here so that both sides stay busy (:func:`helper_share`
+    from the CPU times seen so far; every chunk goes to a helper until there are any). A chunk
+    whose helper failed is tested here; after a helper died, every later one is.
+
+    ``prepare(engine, config, versions, shifts, memo)`` runs in the helpers and answers with
+    an object that has ``cpu_s``, the CPU seconds it took.
+    """
+
+    def __init__(self, engine: Any, config: Any, versions: Mapping[str, int],
+                 parts: Sequence[Sequence[Any]], helpers: int, prepare: Callable[..., Any],
+                 *, gc_threshold: int | None = None) -> None:
+        self._start = (engine, config, versions, helpers, gc_threshold)
+        self.parts, self.helpers, self.prepare = parts, max(0, helpers), prepare
+        self.pool: HelperPool | None = None
+        self.ready: cf.Future[Any] | None = None
+        self.pending: dict[int, cf.Future[Any]] = {}
+        self.next = 1
+        self.credit = 0.0
+        self.cost: dict[str, list[float]] = {"own": [], "written": [], "helper": []}
+
+    def __enter__(self) -> Lookahead:
+        if self.helpers and len(self.parts) > 1:
+            engine, config, versions, helpers, gc_threshold = self._start
+            try:
+                self.pool = HelperPool(engine, config, versions, helpers,
+                                       gc_threshold=gc_threshold)
+                self.ready = self.pool.started()
+            except Exception as exc:  # no helpers: the run goes on in this process
+                log.warning("could not start helper processes (%s)", _why(exc))
+        return self
+
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        self._stop(wait=exc_type is None)  # after a whole run they are idle: end them now
+
+    def take(self, k: int) -> Any | None:
+        """Chunk ``k`` as a helper answered it, or None when the run's process tests it."""
+        self._hand_out(k)
+        future = self.pending.pop(k, None)
+        if future is None:
+            return None
+        try:
+            return future.result()
+        except Exception as exc:
+            log.warning("a helper process failed on %d shifts (%s); testing them here",
+                        len(self.parts[k]), _why(exc))
+            if isinstance(exc, BrokenProcessPool):
+                self._stop()
+            return None
+
+    def record(self, k: int, answer: Any | None, cpu_s: float) -> None:
+        """The CPU seconds the run's process spent on chunk ``k`` (and the helper's answer)."""
+        n = max(1, len(self.parts[k]))
+        if answer is None:
+            self.cost["own"].append(cpu_s / n)
+        else:
+            self.cost["written"].append(cpu_s / n)
+            self.cost["helper"].append(float(answer.cpu_s) / n)
+
+    def share(self) -> float:
+        """The share of the next chunks handed to helpers (1 until every cost was seen)."""
+        if not all(self.cost.values()):
+            return 1.0
+        recent = {key: sum(v[-4:]) / len(v[-4:]) for key, v in self.cost.items()}
+        return helper_share(recent["own"], recent["written"], recent["helper"], self.helpers)
+
+    def _hand_out(self, k: int) -> None:
+        if self.pool is None or self.ready is None or not self.ready.done():
+            return
+        if self.ready.exception() is not None:
+            log.warning("helper processes did not start (%s)", _why(self.ready.exception()))
+            self._stop()
+            return
+        self.next = max(self.next, k + 1)  # chunks up to k were tested here meanwhile
+        while self.next < len(self.parts) and self.next <= k + 2 * self.helpers:
+            self.credit += self.share()
+            if self.credit >= 1.0 - 1e-9:
+                self.credit -= 1.0
+                try:
+                    self.pending[self.next] = self.pool.submit(self.prepare, self.parts[self.next])
+                except Exception as exc:  # the pool is broken or shut down
+                    log.warning("helper processes stopped (%s)", _why(exc))
+                    self._stop()
+                    return
+            self.next += 1
+
+    def _stop(self, wait: bool = False) -> None:
+        if self.pool is not None:
+            self.pool.close(wait)
+        self.pool = None
+        for future in self.pending.values():
+            future.cancel()
+        self.pending.clear()
+
+
+def _why(exc: BaseException) -> str:
+    return f"{type(exc).__name__}: {exc}"[:300]

@@ -46,7 +46,6 @@ import math
 import time
 from collections import Counter
 from collections.abc import Callable, Iterator, Mapping, Sequence
-from concurrent.futures.process import BrokenProcessPool
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
@@ -325,12 +324,14 @@ class PreparedChunk:
 
     tables: tuple[CountTable, ...]
     shifts: tuple[PreparedShift, ...]
+    cpu_s: float = 0.0  # CPU time it took
 
 
 def prepare_chunk(engine: Any, config: Any, versions: Mapping[str, int],
                   shifts: Sequence[ShiftInstance], memo: BaselineMemo) -> PreparedChunk:
     """Read and test a chunk of shifts, everything but the chart stage and the alarm log
     (run in a helper process, see :mod:`qcfit.backfill`; no write)."""
+    c0 = time.process_time()
     tables = _read_tables(engine, config, shifts)
     seeds = [shift_seed(config.thresholds.seed, s.id) for s in shifts]
     method = config.thresholds.multiple_testing
@@ -341,7 +342,7 @@ def prepare_chunk(engine: Any, config: Any, versions: Mapping[str, int],
             rows=tuple(esql.json_text_row(finding_values(f)) for f in judged),
             for_decisions=policy.for_decisions(judged),
             verdicts=tuple(Counter(f.verdict for f in judged).items())))
-    return PreparedChunk(tuple(tables), tuple(out))
+    return PreparedChunk(tuple(tables), tuple(out), time.process_time() - c0)
 
 
 def _error_text(exc: BaseException) -> str:
@@ -617,9 +618,9 @@ def evaluate_shifts(
     """Evaluate ``shifts`` in order (re-evaluating any already evaluated), ``chunk`` shifts per
     write transaction.
 
-    A long run has later chunks read and tested by ``helpers`` helper processes while this
-    process writes (:mod:`qcfit.backfill`; default :func:`backfill.helpers_for`, 0 for none);
-    the results are the same.
+    A long run has some later chunks read and tested by ``helpers`` helper processes while
+    this process writes (:mod:`qcfit.backfill`; default :func:`backfill.helpers_for`, 0 for
+    none); the results are the same.
 
     With sequential charts, every later shift that has chart rows is re-evaluated too, in
     order (``forward`` on its summary). A run of more than one write transaction marks the
@@ -640,83 +641,25 @@ def evaluate_shifts(
     size = max(1, chunk)
     parts = [shifts[start:start + size] for start in range(0, len(shifts), size)]
     out: list[EvaluationSummary] = []
-    with _few_collections(len(shifts) > 1), _Ahead(run, parts, helpers) as ahead:
+    if helpers is None:
+        helpers = backfill.helpers_for(len(parts))
+    ahead = backfill.Lookahead(engine, config, versions, parts, helpers, prepare_chunk,
+                               gc_threshold=RUN_GC_THRESHOLD)
+    with _few_collections(len(shifts) > 1), ahead:
         for k, part in enumerate(parts):
             rest = shifts[(k + 1) * size:]
             prepared = ahead.take(k)
+            c0 = time.process_time()
             if prepared is not None:
                 done = run.chunk_prepared(part, rest, prepared)
             else:
                 done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
+            ahead.record(k, prepared, time.process_time() - c0)
             out += [_labelled(s, run, asked) for s in done]
             if progress is not None:
                 for i in range(len(out) - len(part), len(out)):
                     progress(i + 1, len(shifts), out[i])
     return out
-
-
-class _Ahead:
-    """The chunks of a run that helper processes test ahead of the writing (see
-    :mod:`qcfit.backfill`): the first chunk stays here while they start, every later one is
-    handed out a few chunks ahead. A chunk whose helper failed is tested here."""
-
-    def __init__(self, run: _Run, parts: Sequence[Sequence[ShiftInstance]],
-                 helpers: int | None) -> None:
-        self.run, self.parts = run, parts
-        self.helpers = backfill.helpers_for(len(parts)) if helpers is None else max(0, helpers)
-        self.pool: backfill.HelperPool | None = None
-        self.pending: dict[int, Any] = {}
-        self.next = 1
-
-    def __enter__(self) -> _Ahead:
-        if self.helpers and len(self.parts) > 1:
-            try:
-                self.pool = backfill.HelperPool(self.run.engine, self.run.config,
-                                                self.run.versions, self.helpers,
-                                                gc_threshold=RUN_GC_THRESHOLD)
-            except Exception as exc:  # no helpers: the run goes on in this process
-                log.warning("could not start helper processes (%s)", _error_text(exc))
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        if self.pool is not None:
-            self.pool.close()
-
-    def take(self, k: int) -> PreparedChunk | None:
-        """Chunk ``k`` tested by a helper, or None when this process is to test it."""
-        self._hand_out(k)
-        future = self.pending.pop(k, None)
-        if future is None:
-            return None
-        try:
-            return future.result()
-        except Exception as exc:
-            log.warning("a helper process failed on %d shifts (%s); testing them here",
-                        len(self.parts[k]), _error_text(exc))
-            if isinstance(exc, BrokenProcessPool):
-                self._stop()
-            return None
-
-    def _hand_out(self, k: int) -> None:
-        if self.pool is None:
-            return
-        ahead = 2 * self.helpers  # every helper has its next chunk waiting
-        while self.next < len(self.parts) and self.next <= k + ahead:
-            try:
-                self.pending[self.next] = self.pool.submit(prepare_chunk, self.parts[self.next])
-            except Exception as exc:  # the pool is broken or shut down
-                log.warning("helper processes stopped (%s)", _error_text(exc))
-                self._stop()
-                return
-            self.next += 1
-
-    def _stop(self) -> None:
-        if self.pool is not None:
-            self.pool.close()
-        self.pool = None
-        for future in self.pending.values():
-            future.cancel()
-        self.pending.clear()
 
 
 #: objects allocated between two youngest-generation collections of the cycle collector during

@@ -3,6 +3,7 @@ a helper that dies costs only time, and helpers do not outlive the run's process
 
 from __future__ import annotations
 
+import concurrent.futures as cf
 import datetime as dt
 import os
 import signal
@@ -71,6 +72,20 @@ def one_process(tmp_path_factory, text) -> dict[str, list]:
     return _ONE_PROCESS[text]
 
 
+@pytest.fixture(autouse=True)
+def patient(monkeypatch) -> None:
+    """The run's process waits for its helpers to start before handing out chunks (a run
+    this short would otherwise be over before they are up)."""
+    original = backfill.Lookahead._hand_out
+
+    def hand_out(self, k: int) -> None:
+        if self.ready is not None:
+            cf.wait([self.ready], timeout=60)
+        original(self, k)
+
+    monkeypatch.setattr(backfill.Lookahead, "_hand_out", hand_out)
+
+
 def count_prepared(monkeypatch) -> list[int]:
     """Counts the chunks written from a helper's answer (one entry per shift)."""
     seen: list[int] = []
@@ -88,7 +103,7 @@ def test_helpers_leave_the_store_exactly_as_one_process(tmp_path, text, one_proc
                                                         caplog):
     prepared = count_prepared(monkeypatch)
     with_helpers = backfilled(tmp_path / "helpers", text, helpers=2)
-    assert len(prepared) == 12  # every chunk but the first came from a helper
+    assert len(prepared) >= 6  # at least two of the five chunks came from a helper
     assert not [r for r in caplog.records if r.levelname == "WARNING"]
     assert one_process["finding"] and one_process["alarm"] and one_process["chart_state"]
     for table, rows in one_process.items():
@@ -163,3 +178,14 @@ def _alive(pid: int) -> bool:
             return f.read().split(") ")[1][0] != "Z"
     except FileNotFoundError:
         return False
+
+
+def test_helper_share_balances_the_two_sides() -> None:
+    # own 10 ms a shift, 2 ms to write a helper's answer, 8 ms in a helper: f = 10 / 16
+    f = backfill.helper_share(10.0, 2.0, 8.0, 1)
+    assert f == pytest.approx(0.625)
+    assert (1 - f) * 10.0 + f * 2.0 == pytest.approx(f * 8.0)  # both sides busy alike
+    assert backfill.helper_share(10.0, 2.0, 8.0, 2) == pytest.approx(10.0 / 12.0)
+    # the chart stage keeps the run's process busy anyway: every chunk to the helpers
+    assert backfill.helper_share(23.0, 16.0, 8.0, 1) == 1.0
+    assert backfill.helper_share(0.0, 0.0, 0.0, 1) == 1.0

@@ -115,7 +115,10 @@ class MultinomialSampler:
         k = self.p.size
         if self.tables is None or len(rngs) < 2:
             return [self.draw(rng, np.full(size, n)) for rng in rngs]
-        u = np.concatenate([rng.random((k - 1, size)) for rng in rngs], axis=1)
+        blocks = np.empty((len(rngs), k - 1, size))  # each generator fills its own block,
+        for block, rng in zip(blocks, rngs, strict=True):  # as rng.random((k - 1, size)) would
+            rng.random(out=block)
+        u = blocks.transpose(1, 0, 2).reshape(k - 1, -1)  # chunk after chunk, per category
         out = self._from_uniforms(u, np.full(u.shape[1], n, dtype=np.int64))
         return np.split(out, len(rngs))
 
