@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import concurrent.futures as cf
 import gc
+import importlib
 import logging
 import multiprocessing
 import os
@@ -36,6 +37,9 @@ MAX_HELPERS = 2
 MIN_CHUNKS = 4
 #: how much lower the helpers' scheduling priority is (POSIX nice increment)
 NICE = 5
+
+#: modules a helper imports before it counts as started (what a chunk's tests need)
+PRELOAD = ("qcfit.service",)
 
 _HELPER: dict[str, Any] = {}  # in a helper process: its engine, config, versions, memo
 
@@ -92,6 +96,8 @@ def _start_helper(url: str, busy_timeout_s: float, config: Any, versions: dict[s
                      daemon=True).start()
     _HELPER.update(engine=make_engine(url, busy_timeout_s=busy_timeout_s), config=config,
                    versions=versions, memo={})
+    for name in PRELOAD:  # before the helper counts as started: the first chunk is not slower
+        importlib.import_module(name)
 
 
 def _end_with_parent(parent: int) -> None:
@@ -111,29 +117,19 @@ def _run_in_helper(work: Callable[..., Any], shifts: list[Any]) -> Any:
     return work(h["engine"], h["config"], h["versions"], shifts, h["memo"])
 
 
-def helper_share(own_s: float, written_s: float, helper_s: float, helpers: int) -> float:
-    """The share of a run's chunks to hand to helpers so that the run's process and the
-    helpers finish together, from CPU seconds per shift: ``own_s`` when the run's process
-    tests and writes a chunk, ``written_s`` when it only writes a helper's answer,
-    ``helper_s`` a helper's testing. With share f, the run's process spends
-    (1 - f) own + f written and the ``helpers`` helpers f helper / helpers per shift; equal at
-    f = own / (own - written + helper / helpers), at most 1 (the chart stage and the writes
-    can keep the run's process busier than the helpers, then they get every chunk)."""
-    denominator = own_s - written_s + helper_s / max(1, helpers)
-    if denominator <= 0:
-        return 1.0
-    return min(1.0, max(0.0, own_s / denominator))
-
-
 class Lookahead:
-    """The chunks of a run that helpers test ahead of the writing: the run's process tests
-    the chunks itself until a helper has started (a second or so); later ones are handed out
-    up to two per helper ahead, each to a helper or kept here so that both sides stay busy (:func:`helper_share`
-    from the CPU times seen so far; every chunk goes to a helper until there are any). A chunk
-    whose helper failed is tested here; after a helper died, every later one is.
+    """The chunks of a run that helpers test ahead of the writing.
 
-    ``prepare(engine, config, versions, shifts, memo)`` runs in the helpers and answers with
-    an object that has ``cpu_s``, the CPU seconds it took.
+    Until a helper has started (a second or so) the run's process tests the chunks itself.
+    Then the chunks are handed out in order, two per helper ahead of the one being written.
+    When the run's process would wait for a helper's answer, it tests the next chunk not
+    handed out yet itself instead and keeps the answer until that chunk's turn: both sides
+    stay busy however the cost of chunks varies (a chunk with lines near a decision level
+    costs several times another, for their Monte Carlo p-values). A chunk whose helper
+    failed is tested here; after a helper died, every later one is.
+
+    ``prepare(engine, config, versions, shifts, memo)`` tests a chunk (in a helper, or here
+    with the run's own engine); its answer is what :meth:`take` returns.
     """
 
     def __init__(self, engine: Any, config: Any, versions: Mapping[str, int],
@@ -144,9 +140,9 @@ class Lookahead:
         self.pool: HelperPool | None = None
         self.ready: cf.Future[Any] | None = None
         self.pending: dict[int, cf.Future[Any]] = {}
+        self.here: dict[int, Any] = {}  # answers tested in this process while waiting
+        self.memo: dict[Any, Any] = {}
         self.next = 1
-        self.credit = 0.0
-        self.cost: dict[str, list[float]] = {"own": [], "written": [], "helper": []}
 
     def __enter__(self) -> Lookahead:
         if self.helpers and len(self.parts) > 1:
@@ -163,11 +159,16 @@ class Lookahead:
         self._stop(wait=exc_type is None)  # after a whole run they are idle: end them now
 
     def take(self, k: int) -> Any | None:
-        """Chunk ``k`` as a helper answered it, or None when the run's process tests it."""
+        """Chunk ``k`` tested ahead (by a helper, or here while waiting for one), or None
+        when the caller is to test it."""
         self._hand_out(k)
+        if k in self.here:
+            return self.here.pop(k)
         future = self.pending.pop(k, None)
         if future is None:
             return None
+        while not future.done() and self._test_one_here(k):
+            pass
         try:
             return future.result()
         except Exception as exc:
@@ -177,21 +178,17 @@ class Lookahead:
                 self._stop()
             return None
 
-    def record(self, k: int, answer: Any | None, cpu_s: float) -> None:
-        """The CPU seconds the run's process spent on chunk ``k`` (and the helper's answer)."""
-        n = max(1, len(self.parts[k]))
-        if answer is None:
-            self.cost["own"].append(cpu_s / n)
-        else:
-            self.cost["written"].append(cpu_s / n)
-            self.cost["helper"].append(float(answer.cpu_s) / n)
-
-    def share(self) -> float:
-        """The share of the next chunks handed to helpers (1 until every cost was seen)."""
-        if not all(self.cost.values()):
-            return 1.0
-        recent = {key: sum(v[-4:]) / len(v[-4:]) for key, v in self.cost.items()}
-        return helper_share(recent["own"], recent["written"], recent["helper"], self.helpers)
+    def _test_one_here(self, k: int) -> bool:
+        """Test the next chunk not handed out yet in this process; False if there is none."""
+        if self.next >= len(self.parts):
+            return False
+        j, self.next = self.next, self.next + 1
+        engine, config, versions, _, _ = self._start
+        try:
+            self.here[j] = self.prepare(engine, config, versions, self.parts[j], self.memo)
+        except Exception as exc:  # the chunk is evaluated the ordinary way in its turn
+            log.warning("testing %d shifts ahead failed (%s)", len(self.parts[j]), _why(exc))
+        return True
 
     def _hand_out(self, k: int) -> None:
         if self.pool is None or self.ready is None or not self.ready.done():
@@ -201,17 +198,16 @@ class Lookahead:
             self._stop()
             return
         self.next = max(self.next, k + 1)  # chunks up to k were tested here meanwhile
-        while self.next < len(self.parts) and self.next <= k + 2 * self.helpers:
-            self.credit += self.share()
-            if self.credit >= 1.0 - 1e-9:
-                self.credit -= 1.0
-                try:
-                    self.pending[self.next] = self.pool.submit(self.prepare, self.parts[self.next])
-                except Exception as exc:  # the pool is broken or shut down
-                    log.warning("helper processes stopped (%s)", _why(exc))
-                    self._stop()
-                    return
+        waiting = sum(1 for j, f in self.pending.items() if j > k and not f.done())
+        while self.next < len(self.parts) and waiting < 2 * self.helpers:
+            try:
+                self.pending[self.next] = self.pool.submit(self.prepare, self.parts[self.next])
+            except Exception as exc:  # the pool is broken or shut down
+                log.warning("helper processes stopped (%s)", _why(exc))
+                self._stop()
+                return
             self.next += 1
+            waiting += 1
 
     def _stop(self, wait: bool = False) -> None:
         if self.pool is not None:

@@ -189,8 +189,18 @@ def for_decisions(judged: Iterable[Finding]) -> tuple[Finding, ...]:
     fault (its figures go into the alarm), otherwise only its kind, line and verdict (which
     alarm it belongs to, and whether that line and kind was in control). Cheap to send between
     processes; ``decide(..., judged=True)`` gives the same decisions as with the full ones."""
-    return tuple(f if crossed(f) or f.verdict == ev.FAULT else Finding(f.kind, f.line, f.verdict, "")
+    return tuple(f if crossed(f) or f.verdict == ev.FAULT else _Bare(f.kind, f.line, f.verdict, "")
                  for f in judged)
+
+
+class _Bare(Finding):
+    """A finding reduced to its kind, line and verdict (see :func:`for_decisions`); it
+    pickles as the :class:`Finding` with just these, in a few bytes."""
+
+    __slots__ = ()
+
+    def __reduce__(self) -> tuple[Any, tuple[Any, ...]]:
+        return (Finding, (self.kind, self.line, self.verdict, self.reason))
 
 
 def _judged(f: Finding, adjusted_p: float) -> Finding:

@@ -324,14 +324,12 @@ class PreparedChunk:
 
     tables: tuple[CountTable, ...]
     shifts: tuple[PreparedShift, ...]
-    cpu_s: float = 0.0  # CPU time it took
 
 
 def prepare_chunk(engine: Any, config: Any, versions: Mapping[str, int],
                   shifts: Sequence[ShiftInstance], memo: BaselineMemo) -> PreparedChunk:
     """Read and test a chunk of shifts, everything but the chart stage and the alarm log
     (run in a helper process, see :mod:`qcfit.backfill`; no write)."""
-    c0 = time.process_time()
     tables = _read_tables(engine, config, shifts)
     seeds = [shift_seed(config.thresholds.seed, s.id) for s in shifts]
     method = config.thresholds.multiple_testing
@@ -342,7 +340,7 @@ def prepare_chunk(engine: Any, config: Any, versions: Mapping[str, int],
             rows=tuple(esql.json_text_row(finding_values(f)) for f in judged),
             for_decisions=policy.for_decisions(judged),
             verdicts=tuple(Counter(f.verdict for f in judged).items())))
-    return PreparedChunk(tuple(tables), tuple(out), time.process_time() - c0)
+    return PreparedChunk(tuple(tables), tuple(out))
 
 
 def _error_text(exc: BaseException) -> str:
@@ -649,12 +647,10 @@ def evaluate_shifts(
         for k, part in enumerate(parts):
             rest = shifts[(k + 1) * size:]
             prepared = ahead.take(k)
-            c0 = time.process_time()
             if prepared is not None:
                 done = run.chunk_prepared(part, rest, prepared)
             else:
                 done = [run.one(part[0], rest)] if len(part) == 1 else run.chunk(part, rest)
-            ahead.record(k, prepared, time.process_time() - c0)
             out += [_labelled(s, run, asked) for s in done]
             if progress is not None:
                 for i in range(len(out) - len(part), len(out)):

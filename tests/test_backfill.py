@@ -179,13 +179,3 @@ def _alive(pid: int) -> bool:
     except FileNotFoundError:
         return False
 
-
-def test_helper_share_balances_the_two_sides() -> None:
-    # own 10 ms a shift, 2 ms to write a helper's answer, 8 ms in a helper: f = 10 / 16
-    f = backfill.helper_share(10.0, 2.0, 8.0, 1)
-    assert f == pytest.approx(0.625)
-    assert (1 - f) * 10.0 + f * 2.0 == pytest.approx(f * 8.0)  # both sides busy alike
-    assert backfill.helper_share(10.0, 2.0, 8.0, 2) == pytest.approx(10.0 / 12.0)
-    # the chart stage keeps the run's process busy anyway: every chunk to the helpers
-    assert backfill.helper_share(23.0, 16.0, 8.0, 1) == 1.0
-    assert backfill.helper_share(0.0, 0.0, 0.0, 1) == 1.0
