@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import functools
 import gc
 import logging
 import math
@@ -522,74 +523,77 @@ class _Run:
         shift instead, so failures are recorded one by one."""
         t0 = time.perf_counter()
         config, extra, now = self.config, self.extra, self.run_at
-        to_mark = rest if self.marked is None else ()
-        try:
+
+        def writers() -> list[ShiftWriter]:
             tables = _read_tables(self.engine, config, shifts)
             seeds = [shift_seed(config.thresholds.seed, s.id) for s in shifts]
-            computed = list(zip(shifts, seeds, _compute_many(
-                config, self.versions, tables, seeds, extra, self.memo), strict=True))
-            def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
-                ids = ensure_shifts(conn, shifts)
-                told = alarmlog.shifts_with_events(conn, list(ids.values()))
-                done = []
-                for s, seed, found in computed:
-                    done.append(_write_one(conn, config, s, found, seed, now, t0, extra,
-                                           ids[s.id], ids[s.id] not in told))
-                    told.add(ids[s.id])  # a shift listed twice is not fresh the second time
-                return done, _mark_due(conn, to_mark, now)
+            found = _compute_many(config, self.versions, tables, seeds, extra, self.memo)
+            return [functools.partial(_write_one, config=config, shift=s, findings=f, seed=seed,
+                                      now=now, t0=t0, extra=extra)
+                    for s, seed, f in zip(shifts, seeds, found, strict=True)]
 
-            out, marked = run_write(self.engine, write)
-        except Exception as exc:
-            log.warning("evaluating %d shifts together failed (%s); going shift by shift",
-                        len(shifts), _error_text(exc))
-            return [self.one(s, [*shifts[i + 1:], *rest]) for i, s in enumerate(shifts)]
-        if self.marked is None:
-            self.marked = marked
-        for summary in out:
-            _log_done(summary)
-        return out
-
+        return self._write_chunk(shifts, rest, writers, "evaluating")
 
     def chunk_prepared(self, shifts: Sequence[ShiftInstance], rest: Sequence[ShiftInstance],
                        prepared: PreparedChunk) -> list[EvaluationSummary]:
-        """:meth:`chunk` with the per-shift tests done by a helper process (``prepared``):
-        the chart stage, the decisions and the writes here, in the same order and with the
-        same results. Any trouble, and the chunk is evaluated shift by shift instead."""
+        """:meth:`chunk` with the per-shift tests done ahead (``prepared``, by a helper
+        process): the chart stage, the decisions and the writes here, in the same order and
+        with the same results."""
         t0 = time.perf_counter()
         config, extra, now = self.config, self.extra, self.run_at
-        to_mark = rest if self.marked is None else ()
         method = config.thresholds.multiple_testing
-        try:
+
+        def writers() -> list[ShiftWriter]:
             if [t.shift.id for t in prepared.tables] != [s.id for s in shifts]:
-                raise RuntimeError("the helper process answered for other shifts")
-            more = _chart_findings(config, self.versions, prepared.tables, extra, self.memo)
+                raise RuntimeError("the answer is for other shifts")
+            out = []
+            for s, p, charted in zip(shifts, prepared.shifts, _chart_findings(
+                    config, self.versions, prepared.tables, extra, self.memo), strict=True):
+                judged = policy.judge(charted, method)
+                verdicts = Counter(dict(p.verdicts))
+                verdicts.update(f.verdict for f in judged)
+                out.append(functools.partial(
+                    _write_judged, config=config, shift=s,
+                    judged=[*p.for_decisions, *judged],
+                    rows=[*p.rows, *(esql.json_text_row(finding_values(f)) for f in judged)],
+                    verdicts=verdicts, seed=shift_seed(config.thresholds.seed, s.id), now=now,
+                    t0=t0, extra=extra, json_text=True))
+            return out
+
+        return self._write_chunk(shifts, rest, writers, "writing the tests made ahead of")
+
+    def _write_chunk(self, shifts: Sequence[ShiftInstance], rest: Sequence[ShiftInstance],
+                     writers: Callable[[], list[ShiftWriter]], doing: str
+                     ) -> list[EvaluationSummary]:
+        """One write transaction with each shift's ``writers()`` in order (and the run's first
+        marks); shift by shift instead if anything fails."""
+        to_mark = rest if self.marked is None else ()
+        try:
+            ready = writers()
 
             def write(conn: Any) -> tuple[list[EvaluationSummary], Marks]:
                 ids = ensure_shifts(conn, shifts)
                 told = alarmlog.shifts_with_events(conn, list(ids.values()))
                 done = []
-                for s, p, charted in zip(shifts, prepared.shifts, more, strict=True):
-                    judged = policy.judge(charted, method)
-                    verdicts = Counter(dict(p.verdicts))
-                    verdicts.update(f.verdict for f in judged)
-                    rows = [*p.rows, *(esql.json_text_row(finding_values(f)) for f in judged)]
-                    done.append(_write_judged(
-                        conn, config, s, [*p.for_decisions, *judged], rows, verdicts,
-                        shift_seed(config.thresholds.seed, s.id), now, t0, extra, ids[s.id],
-                        ids[s.id] not in told, json_text=True))
-                    told.add(ids[s.id])
-                return done, _mark_due(conn, to_mark, now)
+                for s, write_shift in zip(shifts, ready, strict=True):
+                    done.append(write_shift(conn, row_id=ids[s.id], fresh=ids[s.id] not in told))
+                    told.add(ids[s.id])  # a shift listed twice is not fresh the second time
+                return done, _mark_due(conn, to_mark, self.run_at)
 
             out, marked = run_write(self.engine, write)
         except Exception as exc:
-            log.warning("writing %d shifts tested by a helper failed (%s); going shift by shift",
-                        len(shifts), _error_text(exc))
+            log.warning("%s %d shifts together failed (%s); going shift by shift",
+                        doing, len(shifts), _error_text(exc))
             return [self.one(s, [*shifts[i + 1:], *rest]) for i, s in enumerate(shifts)]
         if self.marked is None:
             self.marked = marked
         for summary in out:
             _log_done(summary)
         return out
+
+
+#: writes one shift of a chunk: (conn, row_id=, fresh=) -> its summary
+ShiftWriter = Callable[..., EvaluationSummary]
 
 
 def _labelled(summary: EvaluationSummary, run: _Run, asked: set[str]) -> EvaluationSummary:
