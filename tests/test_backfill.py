@@ -7,7 +7,6 @@ import concurrent.futures as cf
 import datetime as dt
 import os
 import signal
-import sqlite3
 import subprocess
 import sys
 import textwrap
@@ -16,7 +15,16 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from test_service import LINES, after, flash_jump, healthy, load_counts, make_store, plant_text
+from test_service import (
+    LINES,
+    T0,
+    after,
+    flash_jump,
+    healthy,
+    load_counts,
+    make_store,
+    plant_text,
+)
 
 from qcfit import backfill, service
 from qcfit.calendar import ShiftCalendar
@@ -25,22 +33,32 @@ from qcfit.calendar import ShiftCalendar
 CLOCK_COLUMNS = ("finished_utc", "seconds", "code_version")
 
 
-def store_rows(db: Path) -> dict[str, list[tuple]]:
+def store_rows(engine) -> dict[str, list[tuple]]:
+    """Every row of the tables a run writes, in key order, without clock columns."""
+    import sqlalchemy as sa
+
+    from qcfit.store import schema
+
     out = {}
-    with sqlite3.connect(db) as con:
-        for table in ("shift", "evaluation", "finding", "alarm", "alarm_event", "chart_state"):
-            cols = [r[1] for r in con.execute(f"PRAGMA table_info({table})")
-                    if r[1] not in CLOCK_COLUMNS]
-            out[table] = con.execute(
-                f"SELECT {', '.join(cols)} FROM {table} ORDER BY rowid").fetchall()
+    with engine.connect() as conn:
+        for name in ("shift", "evaluation", "finding", "alarm", "alarm_event", "chart_state"):
+            table = schema.metadata.tables[name]
+            cols = [c for c in table.columns if c.name not in CLOCK_COLUMNS]
+            out[name] = [tuple(r) for r in conn.execute(
+                sa.select(*cols).order_by(*table.primary_key.columns))]
     return out
 
 
-def backfilled(tmp_path: Path, text: str, helpers: int, *, progress=None) -> dict[str, list]:
+def backfilled(folder: Path, text: str, helpers: int, *, url: str | None = None,
+               progress=None) -> dict[str, list]:
     """15 shifts of 4 lines (L1 with a flash jump in shifts 3-5, L3 sparse) evaluated in
-    chunks of 3, with the sequential charts; every table of the store afterwards."""
-    tmp_path.mkdir()
-    config, engine = make_store(tmp_path, text)
+    chunks of 3, with the sequential charts, in a new store (SQLite in ``folder``, or
+    ``url``); every table of the store afterwards."""
+    folder.mkdir()
+    if url is None:
+        config, engine = make_store(folder, text)
+    else:
+        config, engine = store_at(folder, text, url)
     shifts = ShiftCalendar.from_config(config).instances_between(
         dt.datetime(2026, 1, 6, 12, tzinfo=dt.UTC), dt.datetime(2026, 1, 11, 12, tzinfo=dt.UTC))
     rng = np.random.default_rng(21)
@@ -52,8 +70,23 @@ def backfilled(tmp_path: Path, text: str, helpers: int, *, progress=None) -> dic
     done = service.evaluate_shifts(engine, config, shifts, now=after(shifts[-1]), chunk=3,
                                    helpers=helpers, progress=progress)
     assert len(done) == len(shifts) and all(s.ok for s in done)
-    engine.dispose()
-    return store_rows(tmp_path / "store.sqlite")
+    try:
+        return store_rows(engine)
+    finally:
+        engine.dispose()
+
+
+def store_at(folder: Path, text: str, url: str):
+    from qcfit.config import load_config
+    from qcfit.store.engine import make_engine
+    from qcfit.store.migrate import init_store
+
+    path = folder / "plant.toml"
+    path.write_text(text, encoding="utf-8")
+    config = load_config(path)
+    engine = make_engine(url)
+    init_store(engine, config, os_user="test", now=T0)
+    return config, engine
 
 
 @pytest.fixture
