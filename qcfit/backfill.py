@@ -5,8 +5,8 @@ the counts, the baselines and the thresholds. Helper processes read and test lat
 of the run while the process that owns the run writes the current one: the chart stage, the
 alarm decisions and every write stay in that process and in shift order, so the store ends up
 exactly as after a run in one process. A helper's results are plain rows and findings; if a
-helper fails or dies, the owning process evaluates that chunk (and the rest of the run)
-itself.
+helper fails, the owning process evaluates that chunk itself (and, if a helper died, every
+later one).
 
 Helpers are started with the ``spawn`` method (the same on Windows and POSIX, and no store
 connection is inherited), run at a lower scheduling priority than the run's own process so a
@@ -66,7 +66,8 @@ class HelperPool:
         busy = store_info(engine).busy_timeout_s
         self._pool = cf.ProcessPoolExecutor(
             max_workers=processes, mp_context=multiprocessing.get_context("spawn"),
-            initializer=_start_helper, initargs=(url, busy, config, dict(versions), os.getpid(), gc_threshold))
+            initializer=_start_helper,
+            initargs=(url, busy, config, dict(versions), os.getpid(), gc_threshold))
 
     def submit(self, work: Callable[..., Any], shifts: Sequence[Any]) -> cf.Future[Any]:
         return self._pool.submit(_run_in_helper, work, list(shifts))
