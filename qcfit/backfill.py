@@ -136,7 +136,8 @@ class Lookahead:
     def __init__(self, engine: Any, config: Any, versions: Mapping[str, int],
                  parts: Sequence[Sequence[Any]], helpers: int, prepare: Callable[..., Any],
                  *, gc_threshold: int | None = None) -> None:
-        self._start = (engine, config, versions, helpers, gc_threshold)
+        self.engine, self.config, self.versions = engine, config, versions
+        self.gc_threshold = gc_threshold
         self.parts, self.helpers, self.prepare = parts, max(0, helpers), prepare
         self.pool: HelperPool | None = None
         self.ready: cf.Future[Any] | None = None
@@ -147,10 +148,9 @@ class Lookahead:
 
     def __enter__(self) -> Lookahead:
         if self.helpers and len(self.parts) > 1:
-            engine, config, versions, helpers, gc_threshold = self._start
             try:
-                self.pool = HelperPool(engine, config, versions, helpers,
-                                       gc_threshold=gc_threshold)
+                self.pool = HelperPool(self.engine, self.config, self.versions, self.helpers,
+                                       gc_threshold=self.gc_threshold)
                 self.ready = self.pool.started()
             except Exception as exc:  # no helpers: the run goes on in this process
                 log.warning("could not start helper processes (%s)", _why(exc))
@@ -184,9 +184,9 @@ class Lookahead:
         if self.next >= len(self.parts):
             return False
         j, self.next = self.next, self.next + 1
-        engine, config, versions, _, _ = self._start
         try:
-            self.here[j] = self.prepare(engine, config, versions, self.parts[j], self.memo)
+            self.here[j] = self.prepare(self.engine, self.config, self.versions, self.parts[j],
+                                        self.memo)
         except Exception as exc:  # the chunk is evaluated the ordinary way in its turn
             log.warning("testing %d shifts ahead failed (%s)", len(self.parts[j]), _why(exc))
         return True
